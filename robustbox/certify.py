@@ -1,0 +1,523 @@
+"""The certificate: a box of injections for which a solution provably exists.
+
+Given a :class:`~robustbox.quadratic.QuadraticSystem` and an operating point
+z̄, the state responds to injection changes p through a recourse policy
+z = z̄ + K w (K a right inverse of J = DF(z̄)).  The fixed-point map
+
+    T(w) = w − (F(z̄ + K w) − ȳ − E p) = (I − J K) w + E p − r0 − q(K w)
+
+maps the box |w| ≤ ω into itself whenever the bound map T̂(ω) ≤ ω
+(Brouwer's fixed-point theorem), and then every fixed point lies in
+E p + [−a_lo(ω), a_up(ω)], which bounds every monitored quantity.  All
+conditions are evaluated with proven floating-point error bounds, so a
+certificate holds in exact arithmetic.  The mathematics follows the
+self-mapping inner approximations of power-flow feasibility sets (Nguyen,
+Dvijotham, Turitsyn, IEEE Trans. Power Systems 2019; Lee et al., IEEE TCNS
+2019), with exact Jacobian-hull remainders for quadratic maps.
+"""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from typing import Literal
+
+import numpy as np
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+from scipy.optimize import linprog
+
+from .bounds import RemainderBound, RemainderOptions
+from .errors import CertificateError, OperatingPointError
+from .quadratic import QuadraticSystem
+from .rounding import gamma, inflate, matvec_upper, sum_error
+
+Objective = Literal["uniform", "hosting", "widths", "verify"]
+
+
+@dataclass(frozen=True)
+class CertifyOptions:
+    """Options of :func:`certify`.
+
+    remainder:            which remainder bounds to combine (tightest per row).
+    max_fraction:         the largest fraction of the requested band to look for
+                          (1.0: stop at the requested band).
+    inflation:            ε in the ω iteration ω ← (1 + ε) T̂(ω).
+    max_iterations:       cap on that iteration (a cap reached counts as "no ω").
+    precision:            relative precision of the certified fraction.
+    residual_tolerance:   largest |F(z̄) − ȳ| accepted at the operating point
+                          (in the equations' units, per unit for networks).
+    condition_limit:      largest accepted 1-norm condition estimate of J.
+    """
+
+    remainder: RemainderOptions = RemainderOptions()
+    max_fraction: float = 1.0
+    inflation: float = 1e-3
+    max_iterations: int = 400
+    precision: float = 1e-4
+    residual_tolerance: float = 1e-6
+    condition_limit: float = 1e12
+
+
+@dataclass(frozen=True)
+class ConditionCheck:
+    """Outcome of evaluating every certificate condition at one (box, ω).
+
+    ``worst_margin`` is the smallest normalised margin (≥ 0: all hold);
+    ``binding`` names the condition that has it.
+    """
+
+    holds: bool
+    worst_margin: float
+    binding: str
+    self_map_margin: float
+    limit_margin: float
+
+
+@dataclass(eq=False)
+class Certificate:
+    """A certified box of injection deviations p ∈ [lower, upper] around ȳ.
+
+    Units are those of the system (per unit for networks).  ``omega`` is the
+    radius of the recourse region in w, ``state_radius`` = |K| ω bounds the
+    state deviation |z − z̄| for every injection in the box.  ``status`` is
+    "certified" (all conditions hold, proven) or, for ``verify``,
+    "rejected" with ``binding`` naming the failed condition.
+    """
+
+    status: str
+    objective: str
+    names: tuple[str, ...]
+    lower: np.ndarray
+    upper: np.ndarray
+    certified_fraction: float
+    omega: np.ndarray
+    state_point: np.ndarray
+    state_radius: np.ndarray
+    policy: str
+    binding: str
+    worst_margin: float
+    message: str
+    timings_s: dict[str, float] = field(default_factory=dict)
+    _engine: "_Conditions | None" = field(default=None, repr=False)
+
+    @property
+    def state_lower(self) -> np.ndarray:
+        return self.state_point - self.state_radius
+
+    @property
+    def state_upper(self) -> np.ndarray:
+        return self.state_point + self.state_radius
+
+    def recheck(self) -> ConditionCheck:
+        """Re-evaluate every condition for the stored box and ω, with proven rounding bounds."""
+        if self._engine is None:
+            raise CertificateError("this certificate carries no system to recheck against")
+        return self._engine.check(self.lower, self.upper, self.omega)
+
+
+# --------------------------------------------------------------------- policy
+def _recourse_matrix(jac: sp.csr_matrix, names: tuple[str, ...], limit: float) -> tuple[np.ndarray, str]:
+    """A right inverse K of J (J K ≈ I) and the policy's description."""
+    m, n = jac.shape
+    if n < m:
+        raise CertificateError(f"{m} equations but only {n} recourse variables: the system is over-determined")
+    if n == m:
+        try:
+            lu = spla.splu(sp.csc_matrix(jac))
+            k = lu.solve(np.eye(m))
+        except RuntimeError:
+            raise CertificateError(f"the Jacobian is singular at the operating point; "
+                                   f"equations involved: {_weak_rows(jac, names)}") from None
+        policy = "inverse Jacobian: held quantities stay at their values, every equation's injection is met by the state"
+    else:
+        try:
+            lu = spla.splu(sp.csc_matrix(jac @ jac.T))
+            k = np.asarray(jac.T @ lu.solve(np.eye(m)))
+        except RuntimeError:
+            raise CertificateError(f"the Jacobian has dependent rows at the operating point; "
+                                   f"equations involved: {_weak_rows(jac, names)}") from None
+        policy = "minimum-change right inverse Jᵀ(JJᵀ)⁻¹: the state moves by the least-squares change"
+    if not np.all(np.isfinite(k)):
+        raise CertificateError(f"the Jacobian is singular at the operating point; equations involved: {_weak_rows(jac, names)}")
+    cond = spla.norm(jac, 1) * np.abs(k).sum(axis=0).max(initial=0.0)
+    if cond > limit:
+        worst = np.argsort(-np.abs(k).sum(axis=0))[:5]
+        raise CertificateError(f"the Jacobian is ill-conditioned at the operating point (1-norm condition "
+                               f"estimate {cond:.3g} > {limit:.3g}); equations involved: "
+                               + ", ".join(names[i] for i in worst))
+    return k, policy
+
+
+def _weak_rows(jac: sp.csr_matrix, names: tuple[str, ...]) -> str:
+    """Names of the equations with the largest weight in J's smallest left singular vector."""
+    if max(jac.shape) > 3000:
+        return "(system too large to locate them; check islanded buses and duplicate equations)"
+    u, _, _ = np.linalg.svd(jac.toarray())
+    return ", ".join(names[i] for i in np.argsort(-np.abs(u[:, -1]))[:5])
+
+
+# ----------------------------------------------------------------- conditions
+class _Conditions:
+    """Everything that does not depend on the box or ω, precomputed once."""
+
+    def __init__(self, system: QuadraticSystem, point: np.ndarray, k: np.ndarray, policy: str,
+                 remainder: RemainderOptions) -> None:
+        self.system, self.point, self.k, self.policy = system, point, k, policy
+        eq, lim, unc = system.equations, system.limits, system.uncertain
+        m = eq.n_rows
+        self.abs_k = inflate(np.abs(k), 0)
+        jac, jac_err = eq.jacobian_with_error(point)
+        jk = np.asarray(jac @ k)
+        inner = int(np.diff(jac.indptr).max(initial=1))
+        # |I − J K| ≤ |I − fl(J̃K)| + γ|J̃||K| + |J − J̃||K|
+        spread = np.asarray((abs(jac) * gamma(inner + 1) + jac_err) @ self.abs_k)
+        self.abs_ijk = inflate(np.abs(np.eye(m) - jk), 1) + inflate(spread, inner)
+        value, err = eq.evaluate_with_error(point)
+        self.r0 = value - system.target
+        self.r0_err = inflate(err + sum_error(value, system.target), 1)
+        self.eq_bound = RemainderBound(eq, k, self.abs_k, remainder)
+        e = unc.equation_map
+        self.e_pos, self.e_neg = e.maximum(0).tocsr(), (-e).maximum(0).tocsr()
+        # limits
+        self.h_bar, h_err = lim.evaluate_with_error(point)
+        self.h_err = inflate(h_err, 0)
+        grad, grad_err = lim.jacobian_with_error(point)
+        g = np.asarray(grad @ k)
+        ginner = int(np.diff(grad.indptr).max(initial=1))
+        self.lin_err = sp.csr_matrix(grad_err + abs(grad) * inflate(gamma(ginner + 1), 0))
+        self.g_pos, self.g_neg = np.maximum(g, 0.0), np.maximum(-g, 0.0)
+        c = np.asarray(e.T @ g.T).T + unc.limit_map.toarray() if unc.size else np.zeros((lim.n_rows, 0))
+        einner = int(np.diff(e.tocsc().indptr).max(initial=1)) if unc.size else 1
+        self.c_err = inflate(gamma(einner + 2) * (np.abs(g) @ abs(e)) + 0.0, 1) if unc.size else c
+        self.c_pos, self.c_neg = np.maximum(c, 0.0), np.maximum(-c, 0.0)
+        self.lim_bound = RemainderBound(lim, k, self.abs_k, remainder)
+        self.lim_scale = np.where(np.isfinite(system.limit_upper - system.limit_lower),
+                                  np.maximum(system.limit_upper - system.limit_lower, 1e-9), 1.0)
+        unc_names = system.uncertain.names
+        self.names_eq, self.names_lim, self.names_unc = eq.names, lim.names, unc_names
+
+    # pieces ------------------------------------------------------------
+    def injection_terms(self, lower: np.ndarray, upper: np.ndarray) -> tuple[np.ndarray, ...]:
+        """Upper bounds of max(E p), max(−E p), max(C p), max(−C p) over the box."""
+        u, ln = np.maximum(upper, 0.0), np.maximum(-lower, 0.0)
+        ep_max = inflate(self.e_pos @ u + self.e_neg @ ln, 2 * self.system.uncertain.size)
+        ep_neg = inflate(self.e_pos @ ln + self.e_neg @ u, 2 * self.system.uncertain.size)
+        cp_max = matvec_upper(self.c_pos + self.c_err, u) + matvec_upper(self.c_neg + self.c_err, ln)
+        cp_neg = matvec_upper(self.c_pos + self.c_err, ln) + matvec_upper(self.c_neg + self.c_err, u)
+        return ep_max, ep_neg, inflate(cp_max, 2), inflate(cp_neg, 2)
+
+    def region_terms(self, omega: np.ndarray) -> dict[str, np.ndarray]:
+        """ω-dependent upper bounds: a_up, a_lo (equations) and the limit parts."""
+        delta = matvec_upper(self.abs_k, omega)
+        iab = matvec_upper(self.abs_ijk, omega)
+        qlo, qhi = self.eq_bound(omega, delta)
+        a_up = iab - self.r0 + self.r0_err - qlo
+        a_up = a_up + sum_error(iab, self.r0, self.r0_err, qlo)
+        a_lo = iab + self.r0 + self.r0_err + qhi
+        a_lo = a_lo + sum_error(iab, self.r0, self.r0_err, qhi)
+        hlo, hhi = self.lim_bound(omega, delta)
+        up_c, lo_c = np.maximum(a_up, 0.0), np.maximum(a_lo, 0.0)
+        g_up = matvec_upper(self.g_pos, up_c) + matvec_upper(self.g_neg, lo_c)
+        g_dn = matvec_upper(self.g_pos, lo_c) + matvec_upper(self.g_neg, up_c)
+        lerr = matvec_upper(self.lin_err, delta)
+        # h ≤ h̄ + err + Cp + g_up + hhi + lerr  ;  h ≥ h̄ − err − C(−p) − g_dn + hlo − lerr
+        lim_up = self.h_bar + self.h_err + g_up + hhi + lerr
+        lim_up = lim_up + sum_error(self.h_bar, self.h_err, g_up, hhi, lerr)
+        lim_lo = self.h_bar - self.h_err - g_dn + hlo - lerr
+        lim_lo = lim_lo - sum_error(self.h_bar, self.h_err, g_dn, hlo, lerr)
+        return {"a_up": a_up, "a_lo": a_lo, "lim_up": lim_up, "lim_lo": lim_lo, "delta": delta}
+
+    def bound_map(self, omega: np.ndarray, ep_max: np.ndarray, ep_neg: np.ndarray,
+                  terms: dict[str, np.ndarray] | None = None) -> np.ndarray:
+        """T̂(ω): proven upper bound of |T(w)| over |w| ≤ ω."""
+        terms = terms or self.region_terms(omega)
+        up = inflate(ep_max + np.maximum(terms["a_up"], 0.0), 2)
+        lo = inflate(ep_neg + np.maximum(terms["a_lo"], 0.0), 2)
+        return np.maximum(up, lo)
+
+    def margins(self, lower: np.ndarray, upper: np.ndarray, omega: np.ndarray,
+                terms: dict[str, np.ndarray] | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(self-map margins, upper-limit margins, lower-limit margins), ≥ 0 where a condition holds."""
+        ep_max, ep_neg, cp_max, cp_neg = self.injection_terms(lower, upper)
+        terms = terms or self.region_terms(omega)
+        that = self.bound_map(omega, ep_max, ep_neg, terms)
+        up = terms["lim_up"] + cp_max
+        up = up + sum_error(terms["lim_up"], cp_max)
+        lo = terms["lim_lo"] - cp_neg
+        lo = lo - sum_error(terms["lim_lo"], cp_neg)
+        with np.errstate(invalid="ignore"):
+            mu = np.where(np.isfinite(self.system.limit_upper), self.system.limit_upper - up, np.inf)
+            ml = np.where(np.isfinite(self.system.limit_lower), lo - self.system.limit_lower, np.inf)
+        return omega - that, mu, ml
+
+    def check(self, lower: np.ndarray, upper: np.ndarray, omega: np.ndarray) -> ConditionCheck:
+        """Evaluate every condition; ``holds`` only if all hold with proven rounding."""
+        ms, mu, ml = self.margins(lower, upper, omega)
+        # exact comparisons of proven bounds (a subtraction a − b ≥ 0 is exact in sign)
+        scale = np.maximum(omega, 1e-300)
+        rel_s = ms / scale
+        rel_u, rel_l = mu / self.lim_scale, ml / self.lim_scale
+        holds = bool(np.all(ms >= 0) and np.all(mu >= 0) and np.all(ml >= 0))
+        cands = []
+        if rel_s.size:
+            i = int(np.argmin(rel_s))
+            cands.append((rel_s[i], f"self-mapping of equation '{self.names_eq[i]}'"))
+        if rel_u.size:
+            i = int(np.argmin(rel_u))
+            cands.append((rel_u[i], f"upper limit '{self.names_lim[i]}'"))
+            i = int(np.argmin(rel_l))
+            cands.append((rel_l[i], f"lower limit '{self.names_lim[i]}'"))
+        worst, binding = min(cands, key=lambda c: c[0]) if cands else (np.inf, "none")
+        smin = float(rel_s.min(initial=np.inf))
+        lmin = float(min(rel_u.min(initial=np.inf), rel_l.min(initial=np.inf)))
+        return ConditionCheck(holds, float(worst), binding, smin, lmin)
+
+    def least_omega(self, lower: np.ndarray, upper: np.ndarray, inflation: float, max_iter: int,
+                    start: np.ndarray | None = None) -> tuple[bool, np.ndarray]:
+        """(found, ω): the smallest ω (up to inflation) with T̂(ω) ≤ ω and all limits holding.
+
+        When none is found, ``found`` is False and ω is the last iterate.
+
+        Iterates ω ← max(ω, (1 + ε) T̂(ω)) from ω = max(box reach, start); the
+        sequence increases, and limits that fail on the way fail at every
+        larger ω too (all bounds grow with ω), which ends the search early.
+        """
+        ep_max, ep_neg, cp_max, cp_neg = self.injection_terms(lower, upper)
+        omega = np.maximum(ep_max, ep_neg)
+        if start is not None:
+            omega = np.maximum(omega, start)
+        sys_ = self.system
+        for _ in range(max_iter):
+            terms = self.region_terms(omega)
+            with np.errstate(invalid="ignore"):
+                if np.any(terms["lim_up"] + cp_max > sys_.limit_upper) or np.any(terms["lim_lo"] - cp_neg < sys_.limit_lower):
+                    return False, omega
+            that = self.bound_map(omega, ep_max, ep_neg, terms)
+            if not np.all(np.isfinite(that)):
+                return False, omega
+            if np.all(that <= omega):
+                return True, omega
+            omega = np.maximum(omega, (1.0 + inflation) * that)
+        return False, omega
+
+
+# ------------------------------------------------------------------- searches
+def _band(system: QuadraticSystem) -> tuple[np.ndarray, np.ndarray]:
+    return system.uncertain.band_lower.astype(float), system.uncertain.band_upper.astype(float)
+
+
+def _fraction_in(lower: np.ndarray, upper: np.ndarray, wl: np.ndarray, wu: np.ndarray) -> float:
+    """Largest t with t·band ⊆ [lower, upper]."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratios = np.concatenate([np.where(wu > 0, upper / wu, np.inf), np.where(wl > 0, -lower / wl, np.inf)])
+    return float(min(ratios.min(initial=np.inf), 1e300))
+
+
+def _uniform(eng: _Conditions, opts: CertifyOptions, wl: np.ndarray, wu: np.ndarray) -> tuple[float, np.ndarray]:
+    """Largest t ≤ max_fraction with [−t wl, t wu] certified: bisection, then a scan of ω's scale."""
+    def it(t: float, start: np.ndarray | None = None) -> np.ndarray | None:
+        found, omega = eng.least_omega(-t * wl, t * wu, opts.inflation, opts.max_iterations, start)
+        return omega if found else None
+
+    omega0 = it(0.0)
+    if omega0 is None:
+        raise CertificateError("no certificate even for a zero box: the self-mapping condition fails at the "
+                               "operating point (residual or Jacobian too poor) or a limit has no room")
+    best_t, best_omega = 0.0, omega0
+    hi = opts.max_fraction
+    om = it(hi, best_omega)
+    if om is not None:
+        return hi, om
+    lo = 0.0
+    while hi - lo > opts.precision * max(hi, 1e-12):
+        mid = 0.5 * (lo + hi)
+        om = it(mid, best_omega)
+        if om is None:
+            hi = mid
+        else:
+            lo, best_t, best_omega = mid, mid, om
+    # method (a): scale the shape ω = τ ω*, closed-form t per τ
+    t_scan, om_scan = _scan_scale(eng, best_omega, wl, wu, opts.max_fraction)
+    if t_scan > best_t:
+        return t_scan, om_scan
+    return best_t, best_omega
+
+
+def _max_t_at(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarray) -> float:
+    """Largest t for which [−t wl, t wu] satisfies every condition at this fixed ω (floating point)."""
+    terms = eng.region_terms(omega)
+    s_up, s_lo, c_up, c_lo = eng.injection_terms(-wl, wu)
+    sys_ = eng.system
+    slack = np.concatenate([omega - np.maximum(terms["a_up"], 0), omega - np.maximum(terms["a_lo"], 0),
+                            sys_.limit_upper - terms["lim_up"], terms["lim_lo"] - sys_.limit_lower])
+    coef = np.concatenate([s_up, s_lo, c_up, c_lo])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        if np.any(slack < 0):
+            return -1.0
+        ratio = np.where(coef > 0, slack / coef, np.inf)
+    return float(np.nanmin(ratio, initial=np.inf))
+
+
+def _scan_scale(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarray,
+                cap: float) -> tuple[float, np.ndarray]:
+    """Golden-section search over τ for ω = τ ω*; the result is rechecked with proven bounds."""
+    seen: dict[float, float] = {}
+
+    def f(tau: float) -> float:
+        seen[tau] = _max_t_at(eng, tau * omega, wl, wu)
+        return seen[tau]
+
+    a, b, g = 0.5, 4.0, (np.sqrt(5.0) - 1.0) / 2.0
+    x1, x2 = b - g * (b - a), a + g * (b - a)
+    f1, f2 = f(x1), f(x2)
+    f(1.0)
+    for _ in range(25):
+        if f1 >= f2:
+            b, x2, f2 = x2, x1, f1
+            x1 = b - g * (b - a)
+            f1 = f(x1)
+        else:
+            a, x1, f1 = x1, x2, f2
+            x2 = a + g * (b - a)
+            f2 = f(x2)
+    tau = max(seen, key=seen.get)
+    t = min(seen[tau], cap)
+    for _ in range(60):
+        if t <= 0:
+            break
+        if eng.check(-t * wl, t * wu, tau * omega).holds:
+            return t, tau * omega
+        t *= 1.0 - 4e-6
+    return 0.0, omega
+
+
+def _lp_box(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarray, cap: float,
+            weights: np.ndarray, lower_fixed: bool) -> tuple[np.ndarray, np.ndarray] | None:
+    """Maximise Σ weights·(u − l) at fixed ω with HiGHS; None if infeasible."""
+    s = len(wl)
+    terms = eng.region_terms(omega)
+    sys_ = eng.system
+    e_pos, e_neg = eng.e_pos.toarray(), eng.e_neg.toarray()
+    cp, cn = eng.c_pos + eng.c_err, eng.c_neg + eng.c_err
+    a_rows = [np.hstack([e_pos, e_neg]), np.hstack([e_neg, e_pos]), np.hstack([cp, cn]), np.hstack([cn, cp])]
+    rhs = [omega - np.maximum(terms["a_up"], 0), omega - np.maximum(terms["a_lo"], 0),
+           sys_.limit_upper - terms["lim_up"], terms["lim_lo"] - sys_.limit_lower]
+    a_ub, b_ub = np.vstack(a_rows), np.concatenate(rhs)
+    finite = np.isfinite(b_ub)
+    a_ub, b_ub = a_ub[finite], b_ub[finite]
+    if np.any(b_ub < 0):
+        return None
+    active = np.any(a_ub != 0, axis=1)
+    a_ub, b_ub = a_ub[active], b_ub[active] * (1 - 1e-7)
+    c_obj = -np.concatenate([weights, weights])
+    bounds = [(0, cap * w) for w in wu] + [((w, w) if lower_fixed else (0, cap * w)) for w in wl]
+    res = linprog(c_obj, A_ub=sp.csr_matrix(a_ub) if a_ub.size else None, b_ub=b_ub if a_ub.size else None,
+                  bounds=bounds, method="highs")
+    if res.status != 0:
+        return None
+    x = np.maximum(res.x, 0.0)
+    return -x[s:], x[:s]
+
+
+def _lp_search(eng: _Conditions, opts: CertifyOptions, wl: np.ndarray, wu: np.ndarray, weights: np.ndarray,
+               lower_fixed: bool, omega_start: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Alternate LP at fixed ω and the least ω for the LP's box; keep the best proven box."""
+    best: tuple[float, np.ndarray, np.ndarray, np.ndarray] | None = None
+    for tau in (1.0, 1.5, 2.5):
+        omega = tau * omega_start
+        for _ in range(4):
+            box = _lp_box(eng, omega, wl, wu, opts.max_fraction, weights, lower_fixed)
+            if box is None:
+                break
+            lower, upper = box
+            for _ in range(40):
+                if eng.check(lower, upper, omega).holds:
+                    break
+                lower, upper = lower * (1 - 1e-6), upper * (1 - 1e-6)
+            else:
+                break
+            value = float(weights @ (upper - lower))
+            if best is None or value > best[0] * (1 + 1e-9):
+                best = (value, lower, upper, omega)
+            found, tighter = eng.least_omega(lower, upper, opts.inflation, opts.max_iterations)
+            if not found or np.allclose(tighter, omega):
+                break
+            omega = tighter
+    if best is None:
+        fixed = " with the lower ends fixed at the band's lower side" if lower_fixed else ""
+        raise CertificateError(f"the box LP found no certifiable box{fixed} at any tried region radius")
+    return best[1], best[2], best[3]
+
+
+# ---------------------------------------------------------------------- entry
+def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "uniform", *,
+            box: tuple[np.ndarray, np.ndarray] | None = None, weights: np.ndarray | None = None,
+            options: CertifyOptions = CertifyOptions()) -> Certificate:
+    """Certify a box of injection deviations around the operating point ``point``.
+
+    objective:
+      "uniform"  largest fraction t ≤ max_fraction of the requested band;
+      "hosting"  lower ends fixed at the band's lower end, maximise Σ weights·upper (LP);
+      "widths"   maximise Σ weights·(upper − lower) inside max_fraction × band (LP);
+      "verify"   check the given ``box = (lower, upper)``; status "certified" or "rejected".
+    Raises OperatingPointError when the point does not solve the equations or
+    violates a limit (the box is then empty), CertificateError when no
+    certificate can be formed (singular Jacobian, no self-mapping region).
+    """
+    t0 = time.perf_counter()
+    point = system.equations._check_point(point)
+    eq = system.equations
+    residual = eq.evaluate(point) - system.target
+    worst = int(np.argmax(np.abs(residual))) if residual.size else 0
+    if residual.size and abs(residual[worst]) > options.residual_tolerance:
+        raise OperatingPointError(f"the operating point does not satisfy the equations: residual "
+                                  f"{residual[worst]:.3g} in '{eq.names[worst]}' exceeds the tolerance "
+                                  f"{options.residual_tolerance:g}")
+    h = system.limits.evaluate(point)
+    viol = [f"'{system.limits.names[t]}' = {h[t]:.6g} outside [{system.limit_lower[t]:.6g}, {system.limit_upper[t]:.6g}]"
+            for t in np.flatnonzero((h > system.limit_upper) | (h < system.limit_lower))]
+    if viol:
+        raise OperatingPointError("the operating point violates " + f"{len(viol)} limit(s), so the box is empty: "
+                                  + "; ".join(viol[:10]) + (" ..." if len(viol) > 10 else ""), viol)
+    jac = eq.jacobian(point)
+    k, policy = _recourse_matrix(jac, eq.names, options.condition_limit)
+    eng = _Conditions(system, point, k, policy, options.remainder)
+    t1 = time.perf_counter()
+    wl, wu = _band(system)
+    if weights is None:
+        with np.errstate(divide="ignore"):
+            weights = np.where(wl + wu > 0, 1.0 / (wl + wu), 0.0)
+    weights = np.asarray(weights, dtype=float)
+    if objective == "verify":
+        if box is None:
+            raise CertificateError("objective 'verify' needs box=(lower, upper)")
+        lower, upper = (np.asarray(b, dtype=float).reshape(-1) for b in box)
+        if lower.shape != wl.shape or upper.shape != wl.shape:
+            raise CertificateError(f"box has {lower.shape[0]}/{upper.shape[0]} entries, the system has "
+                                   f"{wl.shape[0]} uncertain injections")
+        if np.any(lower > 0) or np.any(upper < 0):
+            raise CertificateError("the box must contain the operating point (lower ≤ 0 ≤ upper)")
+        _, omega = eng.least_omega(lower, upper, options.inflation, options.max_iterations)
+    elif objective == "uniform":
+        t, omega = _uniform(eng, options, wl, wu)
+        lower, upper = -t * wl, t * wu
+    elif objective in ("hosting", "widths"):
+        t, omega_u = _uniform(eng, options, wl, wu)
+        lower, upper, omega = _lp_search(eng, options, wl, wu, weights, objective == "hosting", omega_u)
+        if objective == "widths" and weights @ (upper - lower) < weights @ (t * (wu + wl)):
+            lower, upper, omega = -t * wl, t * wu, omega_u
+    else:
+        raise CertificateError(f"unknown objective '{objective}' (uniform, hosting, widths, verify)")
+    t2 = time.perf_counter()
+    check = eng.check(lower, upper, omega)
+    t3 = time.perf_counter()
+    if not check.holds and objective != "verify":
+        raise CertificateError(f"internal: the proven recheck failed ({check.binding}, margin "
+                               f"{check.worst_margin:.3g}); no certificate is returned")
+    status = "certified" if check.holds else "rejected"
+    frac = _fraction_in(lower, upper, wl, wu)
+    message = (f"{status}: {frac:.4g} of the requested band; binding: {check.binding}"
+               if status == "certified" else f"rejected: {check.binding} fails (margin {check.worst_margin:.3g})")
+    return Certificate(status, objective, system.uncertain.names, lower, upper, frac, omega, point,
+                       matvec_upper(eng.abs_k, omega), policy, check.binding, check.worst_margin, message,
+                       {"setup_s": t1 - t0, "search_s": t2 - t1, "recheck_s": t3 - t2, "total_s": t3 - t0}, eng)
