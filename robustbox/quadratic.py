@@ -120,6 +120,34 @@ class QuadraticMap:
             (pos[self.q_row[sel]], self.q_a[sel], self.q_b[sel], self.q_val[sel]),
             (lin.row, lin.col, lin.data), self.constant[rows])
 
+    def substitute(self, new_index: np.ndarray, values: np.ndarray, n_new: int,
+                   extra_linear: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None) -> "QuadraticMap":
+        """Fix some variables and renumber the rest.
+
+        ``new_index[v]`` is the new number of variable v, or −1 when v is fixed
+        at ``values[v]``; ``extra_linear = (rows, new_cols, values)`` adds linear
+        terms in the new numbering (e.g. a distributed-slack variable).
+        """
+        ia, ib = new_index[self.q_a], new_index[self.q_b]
+        fa, fb = ia < 0, ib < 0
+        both = ~fa & ~fb
+        lin = self.linear.tocoo()
+        lfree = new_index[lin.col] >= 0
+        lr = [self.q_row[~fa & fb], self.q_row[fa & ~fb], lin.row[lfree]]
+        lc = [ia[~fa & fb], ib[fa & ~fb], new_index[lin.col[lfree]]]
+        lv = [self.q_val[~fa & fb] * values[self.q_b[~fa & fb]], self.q_val[fa & ~fb] * values[self.q_a[fa & ~fb]],
+              lin.data[lfree]]
+        if extra_linear is not None:
+            lr.append(np.asarray(extra_linear[0]))
+            lc.append(np.asarray(extra_linear[1]))
+            lv.append(np.asarray(extra_linear[2], dtype=float))
+        const = self.constant.copy()
+        const += np.bincount(self.q_row[fa & fb], weights=self.q_val[fa & fb] * values[self.q_a[fa & fb]]
+                             * values[self.q_b[fa & fb]], minlength=self.n_rows)
+        const += np.bincount(lin.row[~lfree], weights=lin.data[~lfree] * values[lin.col[~lfree]], minlength=self.n_rows)
+        return QuadraticMap.from_terms(n_new, self.names, (self.q_row[both], ia[both], ib[both], self.q_val[both]),
+                                       (np.concatenate(lr), np.concatenate(lc), np.concatenate(lv)), const)
+
     @staticmethod
     def stack(maps: Sequence["QuadraticMap"]) -> "QuadraticMap":
         """Rows of several maps over the same variables, one after another."""

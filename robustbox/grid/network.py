@@ -1,0 +1,203 @@
+"""Network data: the MATPOWER tables, checked, with per-unit views.
+
+The tables keep the MATPOWER column layout (so a written case file is an
+exact copy); properties give per-unit arrays for the in-service elements.
+Engineering units (MW, Mvar, kV, degrees) live only in the tables.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.sparse as sp
+
+from ..errors import NetworkError
+
+# MATPOWER column indices (0-based), "MATPOWER User's Manual", Appendix B.
+BUS_I, BUS_TYPE, PD, QD, GS, BS, BUS_AREA, VM, VA, BASE_KV, ZONE, VMAX, VMIN = range(13)
+GEN_BUS, PG, QG, QMAX, QMIN, VG, MBASE, GEN_STATUS, PMAX, PMIN = range(10)
+F_BUS, T_BUS, BR_R, BR_X, BR_B, RATE_A, RATE_B, RATE_C, TAP, SHIFT, BR_STATUS, ANGMIN, ANGMAX = range(13)
+BUS_COLS, GEN_COLS, BRANCH_COLS = 13, 10, 11
+PQ, PV, REF, NONE = 1, 2, 3, 4
+
+
+@dataclass(eq=False)
+class Network:
+    """A power network in MATPOWER table layout (see module doc)."""
+
+    name: str
+    base_mva: float
+    bus: np.ndarray
+    gen: np.ndarray
+    branch: np.ndarray
+    gencost: np.ndarray | None
+    source: str = "<memory>"
+    row_lines: dict[str, list[int]] = field(default_factory=dict)
+
+    # ------------------------------------------------------------ checking
+    @classmethod
+    def from_tables(cls, name: str, base_mva: float, bus: np.ndarray, gen: np.ndarray, branch: np.ndarray,
+                    gencost: np.ndarray | None = None, source: str = "<memory>",
+                    row_lines: dict[str, list[int]] | None = None) -> "Network":
+        """Build and check a network; errors name the file line of the bad row."""
+        bus = np.array(bus, dtype=float, ndmin=2)
+        gen = np.array(gen, dtype=float, ndmin=2)
+        branch = np.array(branch, dtype=float, ndmin=2)
+        if branch.shape[0] and BRANCH_COLS <= branch.shape[1] < 13:
+            # angle-difference columns are optional in the format; missing means unlimited
+            pad = np.tile([-360.0, 360.0], (branch.shape[0], 1))[:, branch.shape[1] - ANGMIN:]
+            branch = np.hstack([branch, pad])
+        net = cls(name, float(base_mva), bus, gen, branch,
+                  None if gencost is None else np.array(gencost, dtype=float, ndmin=2), source, dict(row_lines or {}))
+        net._check()
+        return net
+
+    def where(self, table: str, row: int) -> str:
+        """'file:line (mpc.table row k)' for messages."""
+        lines = self.row_lines.get(table, [])
+        line = f":{lines[row]}" if row < len(lines) else ""
+        return f"{self.source}{line} (mpc.{table} row {row + 1})"
+
+    def _check(self) -> None:
+        bus, gen, br = self.bus, self.gen, self.branch
+        for table, mat, cols in (("bus", bus, BUS_COLS), ("gen", gen, GEN_COLS), ("branch", br, BRANCH_COLS)):
+            if mat.size and mat.shape[1] < cols:
+                raise NetworkError(f"{self.source}: mpc.{table} has {mat.shape[1]} columns, needs {cols}")
+            bad = np.argwhere(~np.isfinite(mat[:, :cols]) & ~np.isinf(mat[:, :cols]))
+            if bad.size:
+                raise NetworkError(f"{self.where(table, int(bad[0, 0]))}: column {int(bad[0, 1]) + 1} is not a number")
+        if not len(bus):
+            raise NetworkError(f"{self.source}: the network has no buses")
+        nums = bus[:, BUS_I]
+        if np.any(nums != np.round(nums)) or np.any(nums <= 0):
+            r = int(np.flatnonzero((nums != np.round(nums)) | (nums <= 0))[0])
+            raise NetworkError(f"{self.where('bus', r)}: bus number {nums[r]} must be a positive integer")
+        uniq, counts = np.unique(nums, return_counts=True)
+        if np.any(counts > 1):
+            dup = uniq[counts > 1][0]
+            raise NetworkError(f"{self.where('bus', int(np.flatnonzero(nums == dup)[1]))}: bus number {int(dup)} appears twice")
+        for r, t in enumerate(bus[:, BUS_TYPE]):
+            if t not in (PQ, PV, REF, NONE):
+                raise NetworkError(f"{self.where('bus', r)}: bus type {t} is not 1 (PQ), 2 (PV), 3 (slack) or 4 (isolated)")
+            if t == NONE:
+                raise NetworkError(f"{self.where('bus', r)}: bus {int(nums[r])} is isolated (type 4); "
+                                   "remove it and its branches before certification")
+            if bus[r, VMIN] > bus[r, VMAX] or bus[r, VMAX] <= 0:
+                raise NetworkError(f"{self.where('bus', r)}: voltage limits Vmin={bus[r, VMIN]} > Vmax={bus[r, VMAX]} "
+                                   f"at bus {int(nums[r])}")
+        index = self.bus_index
+        for r, b in enumerate(gen[:, GEN_BUS]):
+            if b not in index:
+                raise NetworkError(f"{self.where('gen', r)}: generator at bus {b:g}, no such bus")
+            if gen[r, GEN_STATUS] > 0 and (gen[r, PMIN] > gen[r, PMAX] or gen[r, QMIN] > gen[r, QMAX]):
+                raise NetworkError(f"{self.where('gen', r)}: generator at bus {int(b)} has min above max "
+                                   f"(P {gen[r, PMIN]}..{gen[r, PMAX]} MW, Q {gen[r, QMIN]}..{gen[r, QMAX]} Mvar)")
+        for r in range(len(br)):
+            for col in (F_BUS, T_BUS):
+                if br[r, col] not in index:
+                    raise NetworkError(f"{self.where('branch', r)}: branch end at bus {br[r, col]:g}, no such bus")
+            if br[r, BR_STATUS] > 0 and br[r, BR_R] == 0 and br[r, BR_X] == 0:
+                raise NetworkError(f"{self.where('branch', r)}: branch {int(br[r, F_BUS])}-{int(br[r, T_BUS])} "
+                                   "has zero impedance (r = x = 0)")
+        refs = np.flatnonzero(bus[:, BUS_TYPE] == REF)
+        if len(refs) != 1:
+            raise NetworkError(f"{self.source}: the network needs exactly one slack bus (type 3), found {len(refs)}")
+        if not len(self.gen_on):
+            raise NetworkError(f"{self.source}: no generator is in service")
+        if self.gencost is not None and len(self.gencost) < len(gen):
+            raise NetworkError(f"{self.source}: mpc.gencost has {len(self.gencost)} rows for {len(gen)} generators")
+        if self.gencost is not None:
+            for r in range(len(gen)):
+                model, ncost = self.gencost[r, 0], self.gencost[r, 3]
+                need = 4 + int(ncost) * (2 if model == 1 else 1)
+                if model not in (1, 2) or ncost < 1 or need > self.gencost.shape[1] or np.any(np.isnan(self.gencost[r, :need])):
+                    raise NetworkError(f"{self.where('gencost', r)}: cost model {model:g} with {ncost:g} "
+                                       f"coefficients does not fit the row")
+
+    # ----------------------------------------------------------- indexing
+    @property
+    def bus_index(self) -> dict[float, int]:
+        """Bus number → row index in the bus table."""
+        return {b: i for i, b in enumerate(self.bus[:, BUS_I])}
+
+    @property
+    def n_bus(self) -> int:
+        return len(self.bus)
+
+    @property
+    def gen_on(self) -> np.ndarray:
+        """Indices of in-service generators."""
+        return np.flatnonzero(self.gen[:, GEN_STATUS] > 0)
+
+    @property
+    def branch_on(self) -> np.ndarray:
+        """Indices of in-service branches."""
+        return np.flatnonzero(self.branch[:, BR_STATUS] > 0)
+
+    def gen_bus_idx(self, rows: np.ndarray | None = None) -> np.ndarray:
+        rows = self.gen_on if rows is None else rows
+        idx = self.bus_index
+        return np.array([idx[b] for b in self.gen[rows, GEN_BUS]], dtype=np.int64)
+
+    def branch_ends(self, rows: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+        rows = self.branch_on if rows is None else rows
+        idx = self.bus_index
+        return (np.array([idx[b] for b in self.branch[rows, F_BUS]], dtype=np.int64),
+                np.array([idx[b] for b in self.branch[rows, T_BUS]], dtype=np.int64))
+
+    @property
+    def slack(self) -> int:
+        """Index of the slack bus: the type-3 bus, or, when it has no generator in
+        service, the first bus with one (MATPOWER's convention in ``bustypes``)."""
+        ref = int(np.flatnonzero(self.bus[:, BUS_TYPE] == REF)[0])
+        gens = self.gen_bus_idx()
+        return ref if ref in set(gens.tolist()) else int(np.sort(gens)[0])
+
+    def bus_kinds(self) -> tuple[int, np.ndarray, np.ndarray]:
+        """(slack, PV buses, PQ buses) by index; a bus is PV when it has an in-service generator."""
+        has_gen = np.zeros(self.n_bus, dtype=bool)
+        has_gen[self.gen_bus_idx()] = True
+        s = self.slack
+        pv = np.flatnonzero(has_gen & (np.arange(self.n_bus) != s))
+        pq = np.flatnonzero(~has_gen & (np.arange(self.n_bus) != s))
+        return s, pv, pq
+
+    # -------------------------------------------------------- admittances
+    def branch_admittances(self) -> tuple[np.ndarray, ...]:
+        """(Yff, Yft, Ytf, Ytt) per in-service branch, per unit (π model with tap and shift)."""
+        br = self.branch[self.branch_on]
+        ys = 1.0 / (br[:, BR_R] + 1j * br[:, BR_X])
+        bc = br[:, BR_B]
+        tap = np.where(br[:, TAP] == 0, 1.0, br[:, TAP]) * np.exp(1j * np.pi / 180.0 * br[:, SHIFT])
+        ytt = ys + 1j * bc / 2.0
+        yff = ytt / (tap * np.conj(tap))
+        return yff, -ys / np.conj(tap), -ys / tap, ytt
+
+    def admittance(self) -> tuple[sp.csr_matrix, sp.csr_matrix, sp.csr_matrix]:
+        """(Ybus, Yf, Yt): bus admittance and branch-end current matrices, per unit."""
+        yff, yft, ytf, ytt = self.branch_admittances()
+        f, t = self.branch_ends()
+        nl, n = len(f), self.n_bus
+        rows = np.arange(nl)
+        yf = sp.csr_matrix((np.concatenate([yff, yft]), (np.concatenate([rows, rows]), np.concatenate([f, t]))), (nl, n))
+        yt = sp.csr_matrix((np.concatenate([ytf, ytt]), (np.concatenate([rows, rows]), np.concatenate([f, t]))), (nl, n))
+        ysh = (self.bus[:, GS] + 1j * self.bus[:, BS]) / self.base_mva
+        cf = sp.csr_matrix((np.ones(nl), (rows, f)), (nl, n))
+        ct = sp.csr_matrix((np.ones(nl), (rows, t)), (nl, n))
+        ybus = cf.T @ yf + ct.T @ yt + sp.diags(ysh)
+        return sp.csr_matrix(ybus), yf, yt
+
+    # ----------------------------------------------------------- per unit
+    def load_pu(self) -> np.ndarray:
+        """Complex load per bus (Pd + j Qd) in per unit."""
+        return (self.bus[:, PD] + 1j * self.bus[:, QD]) / self.base_mva
+
+    def gen_limits_pu(self) -> dict[str, np.ndarray]:
+        """Per-unit limits of the in-service generators (keys pmin, pmax, qmin, qmax)."""
+        g = self.gen[self.gen_on]
+        return {"pmin": g[:, PMIN] / self.base_mva, "pmax": g[:, PMAX] / self.base_mva,
+                "qmin": g[:, QMIN] / self.base_mva, "qmax": g[:, QMAX] / self.base_mva}
+
+    def copy(self) -> "Network":
+        return Network(self.name, self.base_mva, self.bus.copy(), self.gen.copy(), self.branch.copy(),
+                       None if self.gencost is None else self.gencost.copy(), self.source, dict(self.row_lines))

@@ -1,0 +1,156 @@
+"""Independent sampling validation of a box of injections on a network.
+
+For box vertices and random points inside, run a Newton power flow (polar,
+:mod:`robustbox.grid.powerflow`) from the operating point with the same
+recourse policy and check every limit on the exact quantities: |V| at every
+bus, generator P and Q, branch apparent power |S| ≤ rateA at both ends (the
+circle, not the polygon the certificate uses) and angle differences.  It
+shares no code with the certificate beyond the network data; a
+non-converged power flow counts as a violation.
+"""
+from __future__ import annotations
+
+import itertools
+from dataclasses import dataclass, field
+from typing import Sequence
+
+import numpy as np
+
+from .grid.network import ANGMAX, ANGMIN, BUS_I, RATE_A, VMAX, VMIN, Network
+from .grid.powerflow import newton_power_flow
+from .grid.system import Injection, OperatingPoint
+
+
+@dataclass
+class ValidationReport:
+    """Outcome of sampling a box: counts, and the worst margin per limit class.
+
+    Margins are in the limit's engineering unit (pu for voltage, MW/Mvar/MVA
+    for power, degrees for angles); negative means violated.
+    """
+
+    points: int
+    vertices: int
+    violations: int
+    not_converged: int
+    worst_margin: dict[str, float] = field(default_factory=dict)
+    examples: list[str] = field(default_factory=list)
+
+    @property
+    def passed(self) -> bool:
+        return self.violations == 0 and self.not_converged == 0
+
+
+def _limit_margins(net: Network, v: np.ndarray, sg_bus: np.ndarray, check_p: np.ndarray) -> dict[str, tuple[float, str]]:
+    """Worst margin and the element that has it, per limit class, at one solved state."""
+    base = net.base_mva
+    out: dict[str, tuple[float, str]] = {}
+    vm = np.abs(v)
+    mv = np.minimum(net.bus[:, VMAX] - vm, vm - net.bus[:, VMIN])
+    i = int(np.argmin(mv))
+    out["voltage_pu"] = (float(mv[i]), f"bus {int(net.bus[i, BUS_I])} |V| = {vm[i]:.5f} pu")
+    lim = net.gen_limits_pu()
+    gb = net.gen_bus_idx()
+    agg = {}
+    for key in lim:
+        arr = np.zeros(net.n_bus)
+        np.add.at(arr, gb, lim[key])
+        agg[key] = arr
+    buses = np.unique(gb)
+    mq = np.minimum(agg["qmax"][buses] - sg_bus.imag[buses], sg_bus.imag[buses] - agg["qmin"][buses]) * base
+    i = int(np.argmin(mq))
+    out["gen_q_mvar"] = (float(mq[i]), f"bus {int(net.bus[buses[i], BUS_I])} Qgen = {sg_bus.imag[buses[i]] * base:.3f} Mvar")
+    pb = np.flatnonzero(check_p)
+    if len(pb):
+        mp = np.minimum(agg["pmax"][pb] - sg_bus.real[pb], sg_bus.real[pb] - agg["pmin"][pb]) * base
+        i = int(np.argmin(mp))
+        out["gen_p_mw"] = (float(mp[i]), f"bus {int(net.bus[pb[i], BUS_I])} Pgen = {sg_bus.real[pb[i]] * base:.3f} MW")
+    _, yf, yt = net.admittance()
+    f, t = net.branch_ends()
+    br = net.branch[net.branch_on]
+    rate = br[:, RATE_A]
+    rated = rate > 0
+    if np.any(rated):
+        sf, st = np.abs(v[f] * np.conj(yf @ v)) * base, np.abs(v[t] * np.conj(yt @ v)) * base
+        ms = (rate - np.maximum(sf, st))[rated]
+        i = int(np.argmin(ms))
+        k = np.flatnonzero(rated)[i]
+        out["flow_mva"] = (float(ms[i]), f"branch {int(br[k, 0])}-{int(br[k, 1])} |S| = {max(sf[k], st[k]):.3f} MVA "
+                                         f"(rating {rate[k]:.1f})")
+    dth = np.degrees(np.angle(v[f] * np.conj(v[t])))
+    ma = np.minimum(br[:, ANGMAX] - dth, dth - br[:, ANGMIN])
+    if len(ma):
+        i = int(np.argmin(ma))
+        out["angle_deg"] = (float(ma[i]), f"branch {int(br[i, 0])}-{int(br[i, 1])} angle difference {dth[i]:.3f} deg")
+    return out
+
+
+def sample_points(lower: np.ndarray, upper: np.ndarray, samples: int, max_vertices: int = 10,
+                  seed: int = 0) -> tuple[np.ndarray, int]:
+    """All vertices (when ≤ ``max_vertices`` uncertain components) or random vertices, plus
+    uniform random interior points; returns (points, number of vertices among them)."""
+    rng = np.random.default_rng(seed)
+    s = len(lower)
+    if s <= max_vertices:
+        corners = np.array(list(itertools.product((0, 1), repeat=s)), dtype=float).reshape(-1, s)
+    else:
+        corners = rng.integers(0, 2, size=(samples, s)).astype(float)
+    verts = lower + corners * (upper - lower)
+    inner = lower + rng.random((samples, s)) * (upper - lower)
+    return np.vstack([verts, inner]), len(verts)
+
+
+def validate_box(net: Network, op: OperatingPoint, injections: Sequence[Injection], lower_pu: np.ndarray,
+                 upper_pu: np.ndarray, policy: str = "slack", participation: np.ndarray | None = None,
+                 samples: int = 300, max_vertices: int = 10, seed: int = 0, tol: float = 1e-9,
+                 progress=None) -> ValidationReport:
+    """Sample the box [lower_pu, upper_pu] of injection deviations and check every limit.
+
+    ``tol`` is the power-flow mismatch tolerance and the margin below which a
+    limit counts as violated (per unit or engineering unit: numerical noise only).
+    """
+    points, n_vert = sample_points(np.asarray(lower_pu, float), np.asarray(upper_pu, float), samples, max_vertices, seed)
+    ybus = net.admittance()[0]
+    s, pv, pq = net.bus_kinds()
+    index = net.bus_index
+    gb = net.gen_bus_idx()
+    sg0 = np.zeros(net.n_bus, dtype=complex)
+    np.add.at(sg0, gb, op.pg_pu + 1j * op.qg_pu)
+    sd0 = net.load_pu()
+    bus_part = None
+    check_p = np.zeros(net.n_bus, dtype=bool)
+    if policy == "distributed":
+        bus_part = np.zeros(net.n_bus)
+        np.add.at(bus_part, gb, np.asarray(participation, dtype=float))
+        check_p = bus_part > 0
+    else:
+        check_p[s] = True
+    rows = np.array([index[i.bus] for i in injections], dtype=np.int64)
+    is_q = np.array([i.quantity == "q" for i in injections])
+    report = ValidationReport(len(points), n_vert, 0, 0)
+    worst: dict[str, float] = {}
+    for k, p in enumerate(points):
+        delta = np.zeros(net.n_bus, dtype=complex)
+        np.add.at(delta, rows, np.where(is_q, 1j * p, p))
+        sched = sg0 - sd0 + delta
+        res = newton_power_flow(ybus, sched, op.voltage, s, pv, pq, bus_part, tol=tol)
+        if progress is not None:
+            progress(k + 1, len(points))
+        if not res.converged:
+            report.not_converged += 1
+            if len(report.examples) < 10:
+                report.examples.append(f"point {k}: power flow did not converge (mismatch {res.mismatch_pu:.2e} pu)")
+            continue
+        s_calc = res.voltage * np.conj(ybus @ res.voltage)
+        sg_bus = s_calc + sd0 - delta  # what the generators at each bus produce (loads moved by delta)
+        margins = _limit_margins(net, res.voltage, sg_bus, check_p)
+        bad = False
+        for key, (m, where) in margins.items():
+            worst[key] = min(worst.get(key, np.inf), m)
+            if m < -1e-7:
+                bad = True
+                if len(report.examples) < 10:
+                    report.examples.append(f"point {k}: {key} margin {m:.4g} at {where}")
+        report.violations += int(bad)
+    report.worst_margin = worst
+    return report
