@@ -1,0 +1,191 @@
+"""AC optimal power flow as a Pyomo QCQP in rectangular coordinates, and its solution.
+
+The model follows the published PGLib-OPF AC model: minimise generator cost
+(polynomial up to degree 2, or piecewise linear through epigraph variables);
+power balance at every bus with shunts; |V| bounds as e² + f² bounds;
+generator P/Q bounds; slack angle zero; branch apparent power ≤ rateA at both
+ends (exact: auxiliary flow variables with p² + q² ≤ rate²); angle-difference
+bounds in tangent form.  ``margin`` tightens every limit by that fraction of
+its range (flows: of the rating) to obtain an operating point with room to
+move; the result reports the cost increase over the untightened optimum.
+"""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+
+import numpy as np
+import pyomo.environ as pyo
+
+from ..errors import NetworkError, SolverError
+from ..quadratic import QuadraticMap
+from ..solve import SolveResult, solve_model
+from .forms import angle_forms, branch_flow_forms, injection_forms
+from .network import ANGMAX, ANGMIN, PD, PG, QD, RATE_A, VA, VM, VMAX, VMIN, Network
+from .system import OperatingPoint
+
+
+def _row_exprs(qmap: QuadraticMap, x) -> list:
+    """Pyomo expressions of every row of a quadratic map over variables x[0..n−1]."""
+    terms: list[list] = [[] for _ in range(qmap.n_rows)]
+    for r, a, b, v in zip(qmap.q_row, qmap.q_a, qmap.q_b, qmap.q_val):
+        terms[r].append(float(v) * x[int(a)] * x[int(b)])
+    lin = qmap.linear.tocoo()
+    for r, c, v in zip(lin.row, lin.col, lin.data):
+        terms[r].append(float(v) * x[int(c)])
+    return [sum(t) + float(c) if t else float(c) for t, c in zip(terms, qmap.constant)]
+
+
+def _tighten(lo: np.ndarray, hi: np.ndarray, margin: float) -> tuple[np.ndarray, np.ndarray]:
+    width = np.where(np.isfinite(hi - lo), hi - lo, 0.0)
+    return lo + margin * width, hi - margin * width
+
+
+def build_opf(net: Network, margin: float = 0.0) -> pyo.ConcreteModel:
+    """The AC-OPF of ``net`` as a Pyomo model (per unit; cost in $/h)."""
+    if not 0.0 <= margin < 0.5:
+        raise NetworkError(f"margin must be in [0, 0.5), got {margin}")
+    if net.gencost is None:
+        raise NetworkError(f"{net.source}: no mpc.gencost table, so there is no OPF objective")
+    n, base = net.n_bus, net.base_mva
+    on = net.gen_on
+    gb = net.gen_bus_idx()
+    s = net.slack
+    m = pyo.ConcreteModel(name=f"acopf_{net.name}")
+    m.B = pyo.RangeSet(0, n - 1)
+    m.G = pyo.RangeSet(0, len(on) - 1)
+    vmin, vmax = _tighten(net.bus[:, VMIN], net.bus[:, VMAX], margin)
+    lim = net.gen_limits_pu()
+    pmin, pmax = _tighten(lim["pmin"], lim["pmax"], margin)
+    qmin, qmax = _tighten(lim["qmin"], lim["qmax"], margin)
+    vm0, va0 = net.bus[:, VM], np.radians(net.bus[:, VA] - net.bus[s, VA])
+    m.x = pyo.Var(pyo.RangeSet(0, 2 * n - 1), initialize=lambda _, i: float(
+        vm0[i] * np.cos(va0[i]) if i < n else vm0[i - n] * np.sin(va0[i - n])))
+    for i in range(n):
+        m.x[i].setlb(-vmax[i]); m.x[i].setub(vmax[i])  # noqa: E702
+        m.x[n + i].setlb(-vmax[i]); m.x[n + i].setub(vmax[i])  # noqa: E702
+    m.x[s].setlb(0.0)
+    m.x[n + s].fix(0.0)
+    m.pg = pyo.Var(m.G, bounds=lambda _, g: (pmin[g], pmax[g]), initialize=lambda _, g: 0.5 * (pmin[g] + pmax[g]))
+    m.qg = pyo.Var(m.G, bounds=lambda _, g: (qmin[g], qmax[g]), initialize=lambda _, g: 0.5 * (qmin[g] + qmax[g]))
+    inj = _row_exprs(injection_forms(net), m.x)
+    gens_at = [[] for _ in range(n)]
+    for g, b in enumerate(gb):
+        gens_at[b].append(g)
+    pd, qd = net.bus[:, PD] / base, net.bus[:, QD] / base
+    m.p_balance = pyo.Constraint(m.B, rule=lambda mm, i: sum(mm.pg[g] for g in gens_at[i]) - pd[i] == inj[i])
+    m.q_balance = pyo.Constraint(m.B, rule=lambda mm, i: sum(mm.qg[g] for g in gens_at[i]) - qd[i] == inj[n + i])
+    m.voltage = pyo.Constraint(m.B, rule=lambda mm, i: (vmin[i] ** 2, mm.x[i] ** 2 + mm.x[n + i] ** 2, vmax[i] ** 2))
+    # branch flows (exact circle through auxiliary variables)
+    br = net.branch[net.branch_on]
+    rated = np.flatnonzero(br[:, RATE_A] > 0)
+    flows = _row_exprs(branch_flow_forms(net), m.x)
+    m.R = pyo.RangeSet(0, 2 * len(rated) - 1) if len(rated) else pyo.Set(initialize=[])
+    m.fp = pyo.Var(m.R, initialize=0.0)
+    m.fq = pyo.Var(m.R, initialize=0.0)
+    rate = br[rated, RATE_A] / base * (1.0 - margin)
+    m.fp_def = pyo.Constraint(m.R, rule=lambda mm, r: mm.fp[r] == flows[4 * rated[r // 2] + 2 * (r % 2)])
+    m.fq_def = pyo.Constraint(m.R, rule=lambda mm, r: mm.fq[r] == flows[4 * rated[r // 2] + 2 * (r % 2) + 1])
+    m.flow_limit = pyo.Constraint(m.R, rule=lambda mm, r: mm.fp[r] ** 2 + mm.fq[r] ** 2 <= rate[r // 2] ** 2)
+    # angle differences, tightened by the margin
+    tight = net.copy()
+    lo_a, hi_a = tight.branch[:, ANGMIN].copy(), tight.branch[:, ANGMAX].copy()
+    inside = (lo_a > -90) & (hi_a < 90)
+    lo_t, hi_t = _tighten(lo_a, hi_a, margin)
+    tight.branch[:, ANGMIN] = np.where(inside, lo_t, lo_a)
+    tight.branch[:, ANGMAX] = np.where(inside, hi_t, hi_a)
+    ang = _row_exprs(angle_forms(tight), m.x)
+    m.A = pyo.RangeSet(0, len(ang) - 1) if ang else pyo.Set(initialize=[])
+    m.angle = pyo.Constraint(m.A, rule=lambda mm, r: ang[r] <= 0.0)
+    # cost
+    cost_terms = []
+    m.cost_pwl = pyo.Var(m.G, initialize=0.0)
+    pwl_rows = []
+    for g, row in enumerate(on):
+        c = net.gencost[row]
+        model, ncost = int(c[0]), int(c[3])
+        if model == 2:
+            coef = c[4:4 + ncost][::-1]  # c0, c1, c2 ...
+            if np.any(coef[3:] != 0):
+                raise NetworkError(f"{net.where('gencost', int(row))}: polynomial cost of degree {ncost - 1} is "
+                                   "not quadratic; the OPF supports degree ≤ 2")
+            pmw = m.pg[g] * base
+            cost_terms.append(sum(float(coef[k]) * pmw ** k for k in range(min(len(coef), 3)) if coef[k] != 0))
+            m.cost_pwl[g].fix(0.0)
+        else:
+            pts = c[4:4 + 2 * ncost].reshape(-1, 2)
+            pwl_rows.append((g, pts))
+            cost_terms.append(m.cost_pwl[g])
+    m.PW = pyo.Set(initialize=[(g, k) for g, pts in pwl_rows for k in range(len(pts) - 1)], dimen=2)
+    pwl = dict(pwl_rows)
+
+    def _segment(mm, g, k):
+        (x0, y0), (x1, y1) = pwl[g][k], pwl[g][k + 1]
+        slope = (y1 - y0) / (x1 - x0)
+        return mm.cost_pwl[g] >= y0 + slope * (mm.pg[g] * base - x0)
+    m.pwl_segment = pyo.Constraint(m.PW, rule=_segment)
+    m.cost = pyo.Objective(expr=sum(cost_terms), sense=pyo.minimize)
+    return m
+
+
+@dataclass(frozen=True)
+class OPFResult:
+    """An AC-OPF solution; costs in $/h.  ``cost_increase_per_h`` is the price of the margin."""
+
+    point: OperatingPoint
+    objective_per_h: float
+    margin: float
+    base_objective_per_h: float | None
+    cost_increase_per_h: float | None
+    status: str
+    time_s: float
+    solve: SolveResult
+
+    @property
+    def cost_increase_pct(self) -> float | None:
+        if self.cost_increase_per_h is None or not self.base_objective_per_h:
+            return None
+        return 100.0 * self.cost_increase_per_h / abs(self.base_objective_per_h)
+
+
+def _point_of(net: Network, model: pyo.ConcreteModel, objective: float) -> OperatingPoint:
+    n = net.n_bus
+    x = np.array([pyo.value(model.x[i]) for i in range(2 * n)])
+    v = x[:n] + 1j * x[n:]
+    pg = np.array([pyo.value(model.pg[g]) for g in model.G])
+    qg = np.array([pyo.value(model.qg[g]) for g in model.G])
+    return OperatingPoint(np.abs(v), np.angle(v), pg, qg, objective)
+
+
+def solve_opf(net: Network, margin: float = 0.0, tol: float = 1e-8, compare_base: bool = True) -> OPFResult:
+    """Solve the AC-OPF (tightened by ``margin``) with Ipopt through our bridge.
+
+    With a margin and ``compare_base``, the untightened OPF is solved first and
+    its optimum is reported beside the tightened one (the price of security).
+    """
+    t0 = time.perf_counter()
+    base_obj = None
+    warm = None
+    if margin > 0 and compare_base:
+        base = solve_opf(net, 0.0, tol, compare_base=False)
+        base_obj, warm = base.objective_per_h, base.point
+    model = build_opf(net, margin)
+    if warm is not None:
+        v = warm.voltage
+        for i in range(net.n_bus):
+            model.x[i].set_value(float(v[i].real))
+            if not model.x[net.n_bus + i].fixed:
+                model.x[net.n_bus + i].set_value(float(v[i].imag))
+        for g in model.G:
+            model.pg[g].set_value(float(np.clip(warm.pg_pu[g], model.pg[g].lb, model.pg[g].ub)))
+            model.qg[g].set_value(float(np.clip(warm.qg_pu[g], model.qg[g].lb, model.qg[g].ub)))
+    try:
+        res = solve_model(model, tol=tol)
+    except SolverError as exc:
+        what = f"with margin {margin:g}" if margin else "without margin"
+        raise SolverError(f"{net.source}: AC-OPF {what}: {exc}") from None
+    obj = float(pyo.value(model.cost))
+    point = _point_of(net, model, obj)
+    inc = None if base_obj is None else obj - base_obj
+    return OPFResult(point, obj, margin, base_obj if margin > 0 else obj, inc, res.status,
+                     time.perf_counter() - t0, res)
