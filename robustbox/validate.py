@@ -100,16 +100,14 @@ def sample_points(lower: np.ndarray, upper: np.ndarray, samples: int, max_vertic
     return np.vstack([verts, inner]), len(verts)
 
 
-def validate_box(net: Network, op: OperatingPoint, injections: Sequence[Injection], lower_pu: np.ndarray,
-                 upper_pu: np.ndarray, policy: str = "slack", participation: np.ndarray | None = None,
-                 samples: int = 300, max_vertices: int = 10, seed: int = 0, tol: float = 1e-9,
-                 progress=None) -> ValidationReport:
-    """Sample the box [lower_pu, upper_pu] of injection deviations and check every limit.
+def evaluate_points(net: Network, op: OperatingPoint, injections: Sequence[Injection], points: np.ndarray,
+                    policy: str = "slack", participation: np.ndarray | None = None, tol: float = 1e-9,
+                    progress=None) -> list[dict[str, tuple[float, str]] | None]:
+    """Power flow and limit margins at each point (rows: injection deviations, per unit).
 
-    ``tol`` is the power-flow mismatch tolerance and the margin below which a
-    limit counts as violated (per unit or engineering unit: numerical noise only).
+    Returns per point the worst margin per limit class, or None where the
+    power flow did not converge.
     """
-    points, n_vert = sample_points(np.asarray(lower_pu, float), np.asarray(upper_pu, float), samples, max_vertices, seed)
     ybus = net.admittance()[0]
     s, pv, pq = net.bus_kinds()
     index = net.bus_index
@@ -126,28 +124,48 @@ def validate_box(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     else:
         check_p[s] = True
     rows = np.array([index[i.bus] for i in injections], dtype=np.int64)
-    is_q = np.array([i.quantity == "q" for i in injections])
-    report = ValidationReport(len(points), n_vert, 0, 0)
-    worst: dict[str, float] = {}
-    for k, p in enumerate(points):
+    is_q = np.array([i.quantity == "q" for i in injections], dtype=bool)
+    out: list[dict[str, tuple[float, str]] | None] = []
+    for k, p in enumerate(np.atleast_2d(points)):
         delta = np.zeros(net.n_bus, dtype=complex)
         np.add.at(delta, rows, np.where(is_q, 1j * p, p))
-        sched = sg0 - sd0 + delta
-        res = newton_power_flow(ybus, sched, op.voltage, s, pv, pq, bus_part, tol=tol)
+        res = newton_power_flow(ybus, sg0 - sd0 + delta, op.voltage, s, pv, pq, bus_part, tol=tol)
         if progress is not None:
             progress(k + 1, len(points))
         if not res.converged:
-            report.not_converged += 1
-            if len(report.examples) < 10:
-                report.examples.append(f"point {k}: power flow did not converge (mismatch {res.mismatch_pu:.2e} pu)")
+            out.append(None)
             continue
         s_calc = res.voltage * np.conj(ybus @ res.voltage)
-        sg_bus = s_calc + sd0 - delta  # what the generators at each bus produce (loads moved by delta)
-        margins = _limit_margins(net, res.voltage, sg_bus, check_p)
+        out.append(_limit_margins(net, res.voltage, s_calc + sd0 - delta, check_p))
+    return out
+
+
+VIOLATION_TOL = 1e-7  # numerical noise of a converged power flow (common practice, no source)
+
+
+def validate_box(net: Network, op: OperatingPoint, injections: Sequence[Injection], lower_pu: np.ndarray,
+                 upper_pu: np.ndarray, policy: str = "slack", participation: np.ndarray | None = None,
+                 samples: int = 300, max_vertices: int = 10, seed: int = 0, tol: float = 1e-9,
+                 progress=None) -> ValidationReport:
+    """Sample the box [lower_pu, upper_pu] of injection deviations and check every limit.
+
+    All vertices when there are ≤ ``max_vertices`` uncertain injections (else
+    ``samples`` random vertices), plus ``samples`` random interior points.
+    """
+    points, n_vert = sample_points(np.asarray(lower_pu, float), np.asarray(upper_pu, float), samples, max_vertices, seed)
+    results = evaluate_points(net, op, injections, points, policy, participation, tol, progress)
+    report = ValidationReport(len(points), n_vert, 0, 0)
+    worst: dict[str, float] = {}
+    for k, margins in enumerate(results):
+        if margins is None:
+            report.not_converged += 1
+            if len(report.examples) < 10:
+                report.examples.append(f"point {k}: power flow did not converge")
+            continue
         bad = False
         for key, (m, where) in margins.items():
             worst[key] = min(worst.get(key, np.inf), m)
-            if m < -1e-7:
+            if m < -VIOLATION_TOL:
                 bad = True
                 if len(report.examples) < 10:
                     report.examples.append(f"point {k}: {key} margin {m:.4g} at {where}")

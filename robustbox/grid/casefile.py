@@ -6,7 +6,9 @@ a Matlab function file assigning ``mpc.baseMVA``, ``mpc.bus``, ``mpc.gen``,
 by ``;`` or a newline and columns separated by blanks or ``,``).  Matlab
 comments (``%``) are ignored, numbers may use any float syntax (``1e-3``,
 ``.5``, ``Inf``, ``NaN``), extra columns are kept but not used, and other
-fields (``mpc.bus_name`` ...) are skipped.  Errors name the file and line.
+fields (``mpc.bus_name`` ...) are skipped.  robustbox's own optional field
+``mpc.injection_site = [bus kind capacity_MW; ...]`` (kind 1 wind, 2 solar)
+marks renewable injection sites.  Errors name the file and line.
 """
 from __future__ import annotations
 
@@ -20,7 +22,7 @@ from .network import BRANCH_COLS, BUS_COLS, GEN_COLS, Network
 
 _ASSIGN = re.compile(r"^\s*mpc\.(\w+)\s*=\s*(.*)$")
 _NUMBER = re.compile(r"^[+-]?(?:\d+\.?\d*|\.\d+)(?:[eEdD][+-]?\d+)?$|^[+-]?(?:inf|nan)$", re.IGNORECASE)
-_MIN_COLS = {"bus": BUS_COLS, "gen": GEN_COLS, "branch": BRANCH_COLS, "gencost": 5}
+_MIN_COLS = {"bus": BUS_COLS, "gen": GEN_COLS, "branch": BRANCH_COLS, "gencost": 5, "injection_site": 3}
 
 
 def _strip_comment(line: str) -> str:
@@ -124,8 +126,9 @@ def read_case(path: str | Path) -> Network:
             raise CaseFileError(str(path), None, f"no 'mpc.{name} = [ ... ];' matrix found")
     gencost = fields.get("gencost")
     name = path.stem
-    return Network.from_tables(name, base_mva, fields["bus"], fields["gen"], fields["branch"], gencost,
-                               source=str(path), row_lines=row_lines)
+    net = Network.from_tables(name, base_mva, fields["bus"], fields["gen"], fields["branch"], gencost,
+                              source=str(path), row_lines=row_lines, sites=fields.get("injection_site"))
+    return net
 
 
 def _fmt(x: float) -> str:
@@ -146,6 +149,8 @@ def write_case(network: Network, path: str | Path) -> None:
     tables = [("bus", network.bus), ("gen", network.gen), ("branch", network.branch)]
     if network.gencost is not None:
         tables.append(("gencost", network.gencost))
+    if network.sites is not None:
+        tables.append(("injection_site", network.sites))
     for name, mat in tables:
         out.append(f"mpc.{name} = [")
         for row in mat:

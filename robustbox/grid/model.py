@@ -172,10 +172,10 @@ def solve_opf(net: Network, margin: float = 0.0, tol: float = 1e-8, compare_base
     model = build_opf(net, margin)
     if warm is not None:
         v = warm.voltage
-        for i in range(net.n_bus):
-            model.x[i].set_value(float(v[i].real))
-            if not model.x[net.n_bus + i].fixed:
-                model.x[net.n_bus + i].set_value(float(v[i].imag))
+        for i in range(2 * net.n_bus):
+            var = model.x[i]
+            if not var.fixed:
+                var.set_value(float(np.clip(v[i].real if i < net.n_bus else v[i - net.n_bus].imag, var.lb, var.ub)))
         for g in model.G:
             model.pg[g].set_value(float(np.clip(warm.pg_pu[g], model.pg[g].lb, model.pg[g].ub)))
             model.qg[g].set_value(float(np.clip(warm.qg_pu[g], model.qg[g].lb, model.qg[g].ub)))

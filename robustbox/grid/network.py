@@ -33,12 +33,13 @@ class Network:
     gencost: np.ndarray | None
     source: str = "<memory>"
     row_lines: dict[str, list[int]] = field(default_factory=dict)
+    sites: np.ndarray | None = None  # optional [bus, kind (1 wind, 2 solar), capacity MW] rows
 
     # ------------------------------------------------------------ checking
     @classmethod
     def from_tables(cls, name: str, base_mva: float, bus: np.ndarray, gen: np.ndarray, branch: np.ndarray,
                     gencost: np.ndarray | None = None, source: str = "<memory>",
-                    row_lines: dict[str, list[int]] | None = None) -> "Network":
+                    row_lines: dict[str, list[int]] | None = None, sites: np.ndarray | None = None) -> "Network":
         """Build and check a network; errors name the file line of the bad row."""
         bus = np.array(bus, dtype=float, ndmin=2)
         gen = np.array(gen, dtype=float, ndmin=2)
@@ -48,7 +49,8 @@ class Network:
             pad = np.tile([-360.0, 360.0], (branch.shape[0], 1))[:, branch.shape[1] - ANGMIN:]
             branch = np.hstack([branch, pad])
         net = cls(name, float(base_mva), bus, gen, branch,
-                  None if gencost is None else np.array(gencost, dtype=float, ndmin=2), source, dict(row_lines or {}))
+                  None if gencost is None else np.array(gencost, dtype=float, ndmin=2), source, dict(row_lines or {}),
+                  None if sites is None else np.array(sites, dtype=float, ndmin=2))
         net._check()
         return net
 
@@ -104,6 +106,11 @@ class Network:
             raise NetworkError(f"{self.source}: the network needs exactly one slack bus (type 3), found {len(refs)}")
         if not len(self.gen_on):
             raise NetworkError(f"{self.source}: no generator is in service")
+        if self.sites is not None:
+            for r, (b, kind, cap) in enumerate(self.sites[:, :3]):
+                if b not in index or kind not in (1, 2) or not cap > 0:
+                    raise NetworkError(f"{self.where('injection_site', r)}: site needs an existing bus, kind 1 "
+                                       f"(wind) or 2 (solar) and a positive capacity; got {b:g}, {kind:g}, {cap:g}")
         if self.gencost is not None and len(self.gencost) < len(gen):
             raise NetworkError(f"{self.source}: mpc.gencost has {len(self.gencost)} rows for {len(gen)} generators")
         if self.gencost is not None:
@@ -200,4 +207,5 @@ class Network:
 
     def copy(self) -> "Network":
         return Network(self.name, self.base_mva, self.bus.copy(), self.gen.copy(), self.branch.copy(),
-                       None if self.gencost is None else self.gencost.copy(), self.source, dict(self.row_lines))
+                       None if self.gencost is None else self.gencost.copy(), self.source, dict(self.row_lines),
+                       None if self.sites is None else self.sites.copy())

@@ -1,0 +1,197 @@
+"""The ``robustbox`` command: certify, check, opf, demo.
+
+Exit codes: 0 success; 1 a check found violations or a verified box was
+rejected; 2 bad input (file, option, data); 3 a solver or certificate
+failure.  Errors print one line; ``--debug`` shows the traceback.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import time
+from importlib import resources
+from pathlib import Path
+
+from .certify import CertifyOptions
+from .errors import (CaseFileError, CertificateError, ModelStructureError, NetworkError, OperatingPointError,
+                     QuadraticSystemError, RobustboxError, SolverError)
+from .grid.casefile import read_case
+
+EXIT_OK, EXIT_VIOLATION, EXIT_INPUT, EXIT_SOLVE = 0, 1, 2, 3
+
+
+def demo_case_path() -> Path:
+    """Path of the shipped fictional demo grid."""
+    return Path(str(resources.files("robustbox") / "data" / "demo_grid.m"))
+
+
+def _progress(enabled: bool):
+    if not enabled:
+        return None
+
+    def show(done: int, total: int) -> None:
+        width = 30
+        filled = int(width * done / max(total, 1))
+        sys.stderr.write(f"\r  sampling [{'#' * filled}{'.' * (width - filled)}] {done}/{total}")
+        if done == total:
+            sys.stderr.write("\n")
+        sys.stderr.flush()
+    return show
+
+
+def _uncertain(text: str):
+    if text in ("loads", "renewables"):
+        return text
+    try:
+        return [int(b) for b in text.split(",") if b.strip()]
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"--uncertain: 'loads', 'renewables' or bus numbers like 5,9,17 (got '{text}')") from None
+
+
+def _print_summary(data: dict) -> None:
+    print(f"case: {data['case']}")
+    print(f"scenario: {data['scenario']}")
+    if "opf" in data:
+        o = data["opf"]
+        inc = o.get("cost_increase_per_h")
+        print(f"operating point: AC-OPF margin {o['margin']:g}, cost {o['objective_per_h']:.2f} $/h"
+              + (f" (+{inc:.2f} $/h over the untightened optimum)" if inc is not None else ""))
+    print(f"status: {data['status']}   certified fraction of the band: {data['certified_fraction']:.4g}")
+    print(f"binding: {data['binding_limit']}")
+    print(f"{'bus':>6} {'qty':>3} {'nominal':>10} {'lower':>10} {'upper':>10}  unit")
+    for e in data["box"]:
+        print(f"{e['bus']:>6} {e['quantity']:>3} {e['nominal']:>10.3f} {e['lower']:>10.3f} {e['upper']:>10.3f}  {e['unit']}")
+    print(f"time: {data['timings_s']['total_s']:.2f} s (certificate)")
+
+
+def _cmd_certify(args: argparse.Namespace) -> int:
+    from .study import certify_case, result_to_json, save_json
+    if not args.band > 0:
+        raise NetworkError(f"--band must be positive, got {args.band}")
+    point = None
+    if args.point:
+        try:
+            point = json.loads(Path(args.point).read_text())
+        except (OSError, json.JSONDecodeError) as exc:
+            raise OperatingPointError(f"{args.point}: cannot read the operating point ({exc})") from None
+    res = certify_case(args.case, args.uncertain, args.band, args.objective, args.margin, point, args.policy,
+                       CertifyOptions(max_fraction=args.max_fraction))
+    data = result_to_json(res)
+    _print_summary(data)
+    if args.out:
+        save_json(data, args.out)
+        print(f"wrote {args.out}")
+    if args.report:
+        from .report import write_report
+        print(f"wrote {write_report(res, args.report)}")
+    return EXIT_OK
+
+
+def _cmd_check(args: argparse.Namespace) -> int:
+    from .study import check_box
+    net = read_case(args.case)
+    try:
+        data = json.loads(Path(args.box).read_text())
+    except (OSError, json.JSONDecodeError) as exc:
+        raise OperatingPointError(f"{args.box}: cannot read the box file ({exc})") from None
+    rep = check_box(net, data, args.samples, source=args.box, progress=_progress(sys.stderr.isatty() and not args.quiet))
+    print(f"checked {rep.points} points ({rep.vertices} vertices): {rep.violations} with violations, "
+          f"{rep.not_converged} power flows not converged")
+    for key, val in sorted(rep.worst_margin.items()):
+        print(f"  worst margin {key}: {val:.5g}")
+    for ex in rep.examples:
+        print(f"  {ex}")
+    return EXIT_OK if rep.passed else EXIT_VIOLATION
+
+
+def _cmd_opf(args: argparse.Namespace) -> int:
+    from .grid.model import solve_opf
+    from .study import point_to_json, save_json
+    net = read_case(args.case)
+    res = solve_opf(net, args.margin)
+    data = point_to_json(net, res.point)
+    data.update({"margin": args.margin, "base_objective": res.base_objective_per_h,
+                 "cost_increase": res.cost_increase_per_h, "time_s": res.time_s})
+    print(f"AC-OPF {'with margin ' + format(args.margin, 'g') if args.margin else '(no margin)'}: "
+          f"{res.objective_per_h:.4f} $/h, {res.status}, {res.time_s:.2f} s")
+    if res.cost_increase_per_h is not None:
+        print(f"cost increase over the untightened optimum: {res.cost_increase_per_h:.4f} $/h "
+              f"({res.cost_increase_pct:.3f} %)")
+    if args.out:
+        save_json(data, args.out)
+        print(f"wrote {args.out}")
+    return EXIT_OK
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from .report import write_report
+    from .study import certify_case, check_box, result_to_json, save_json
+    out = Path(args.out) if args.out else Path.cwd() / time.strftime("robustbox-demo-%Y%m%d-%H%M%S")
+    out.mkdir(parents=True, exist_ok=True)
+    case = demo_case_path()
+    print("Lakeholm regional network (fictional demo grid): wind and solar sites may inject up to their full capacity")
+    res = certify_case(case, "renewables", 1.0, "uniform", 0.1, options=CertifyOptions(max_fraction=1.0))
+    data = result_to_json(res)
+    _print_summary(data)
+    save_json(data, out / "box.json")
+    rep = check_box(res.network, data, samples=200, source=str(out / "box.json"),
+                    progress=_progress(sys.stderr.isatty()))
+    print(f"independent check: {rep.points} power flows, {rep.violations} violations, {rep.not_converged} not converged")
+    print(f"wrote {write_report(res, out, rep)}")
+    return EXIT_OK if rep.passed else EXIT_VIOLATION
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="robustbox", description="Certified inner boxes of injections for AC power flow.")
+    p.add_argument("--debug", action="store_true", help="show tracebacks")
+    sub = p.add_subparsers(dest="command", required=True)
+    c = sub.add_parser("certify", help="certify a box of injections on a case file")
+    c.add_argument("case")
+    c.add_argument("--uncertain", type=_uncertain, default="loads",
+                   help="loads | renewables | comma-separated bus numbers (sites injecting 0..band×100 MW)")
+    c.add_argument("--band", type=float, default=0.05, help="requested band (fraction; default 0.05)")
+    c.add_argument("--objective", choices=["uniform", "hosting", "widths"], default="uniform")
+    c.add_argument("--margin", type=float, default=0.1, help="limit margin of the operating-point OPF (default 0.1)")
+    c.add_argument("--point", help="operating point JSON (from 'robustbox opf') instead of the margin OPF")
+    c.add_argument("--policy", choices=["slack", "distributed"], default="slack", help="recourse policy")
+    c.add_argument("--max-fraction", type=float, default=1.0, help="look beyond the band up to this fraction")
+    c.add_argument("--out", help="write the result JSON here")
+    c.add_argument("--report", help="write figures and report.html into this folder")
+    c.set_defaults(func=_cmd_certify)
+    k = sub.add_parser("check", help="independently validate a saved box by sampling power flows")
+    k.add_argument("case")
+    k.add_argument("box")
+    k.add_argument("--samples", type=int, default=300)
+    k.add_argument("--quiet", action="store_true")
+    k.set_defaults(func=_cmd_check)
+    o = sub.add_parser("opf", help="solve the AC-OPF (operating point)")
+    o.add_argument("case")
+    o.add_argument("--margin", type=float, default=0.0)
+    o.add_argument("--out")
+    o.set_defaults(func=_cmd_opf)
+    d = sub.add_parser("demo", help="the whole job on the built-in fictional demo grid")
+    d.add_argument("--out", help="report folder (default: a new folder here)")
+    d.set_defaults(func=_cmd_demo)
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return args.func(args)
+    except (CaseFileError, NetworkError, OperatingPointError, QuadraticSystemError, ModelStructureError) as exc:
+        if args.debug:
+            raise
+        print(f"robustbox: error: {exc}", file=sys.stderr)
+        return EXIT_INPUT
+    except (SolverError, CertificateError, RobustboxError) as exc:
+        if args.debug:
+            raise
+        print(f"robustbox: error: {exc}", file=sys.stderr)
+        return EXIT_SOLVE
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,206 @@
+"""The whole job on a case file: operating point, certificate, result file.
+
+This is the layer the command line and the examples call.  Result files use
+engineering units (MW, Mvar, pu for voltages) and net injections at buses
+(generation positive, load negative); see docs/file-format.md.
+"""
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+
+from .certify import Certificate, CertifyOptions, Objective, certify
+from .errors import NetworkError, OperatingPointError
+from .grid.casefile import read_case
+from .grid.model import OPFResult, solve_opf
+from .grid.network import BUS_I, GEN_BUS, PG, QG, VG, Network
+from .grid.powerflow import newton_power_flow
+from .grid.system import (Injection, NetworkSystem, OperatingPoint, build_system, largest_load_pq_buses,
+                          load_injections, site_injections)
+from .validate import ValidationReport, validate_box
+
+FORMAT_VERSION = 1
+
+
+@dataclass(eq=False)
+class CaseCertificate:
+    """A certificate on a network, with the operating point it was built around."""
+
+    network: Network
+    nsys: NetworkSystem
+    certificate: Certificate
+    opf: OPFResult | None
+    band: float
+    scenario: str
+
+
+def scenario_injections(net: Network, uncertain: str | Sequence[int], band: float) -> tuple[list[Injection], str]:
+    """Injections for 'loads', 'renewables' or an explicit list of bus numbers (sites 0..band×100 MW)."""
+    if not band > 0 or not np.isfinite(band):
+        raise NetworkError(f"band must be a positive number, got {band}")
+    if isinstance(uncertain, str) and uncertain == "loads":
+        return load_injections(net, band), f"loads: P and Q of every load within ±{band:g} × nominal"
+    if isinstance(uncertain, str) and uncertain == "renewables":
+        if net.sites is not None:
+            inj = [Injection(int(b), "p", 0.0, band * cap / net.base_mva) for b, _, cap in net.sites[:, :3]]
+            return inj, f"renewables: the case's {len(inj)} marked sites, each 0..{band:g} × capacity above nominal"
+        buses = largest_load_pq_buses(net, 5)
+        return site_injections(net, buses, band), (f"renewables: five sites at the largest-load PQ buses "
+                                                   f"{buses}, each injecting 0..{band * 100:g} MW")
+    if isinstance(uncertain, str):
+        raise NetworkError(f"unknown uncertainty '{uncertain}': use loads, renewables or a list of bus numbers")
+    return site_injections(net, list(uncertain), band), f"sites at buses {list(uncertain)}, each 0..{band * 100:g} MW"
+
+
+def point_to_json(net: Network, op: OperatingPoint) -> dict:
+    """The operating point in engineering units (generator rows 0-based as in the gen table)."""
+    on = net.gen_on
+    return {
+        "objective": op.objective_per_h,
+        "generators": [{"bus": int(net.gen[g, GEN_BUS]), "index": int(g), "p_mw": float(op.pg_pu[k] * net.base_mva),
+                        "q_mvar": float(op.qg_pu[k] * net.base_mva), "vm_pu": float(op.vm_pu[net.bus_index[net.gen[g, GEN_BUS]]])}
+                       for k, g in enumerate(on)],
+        "buses": [{"bus": int(b), "vm_pu": float(op.vm_pu[i]), "va_deg": float(np.degrees(op.va_rad[i]))}
+                  for i, b in enumerate(net.bus[:, BUS_I])],
+    }
+
+
+def point_from_json(net: Network, data: dict, source: str = "point file") -> OperatingPoint:
+    """Operating point from a file: full bus voltages if given, else a power flow from the generator set-points."""
+    try:
+        gens = {int(g["index"]): g for g in data["generators"]}
+    except (KeyError, TypeError, ValueError):
+        raise OperatingPointError(f"{source}: needs \"generators\": [{{\"index\": ..., \"p_mw\": ..., \"vm_pu\": ...}}]") from None
+    on = net.gen_on
+    missing = [int(g) for g in on if int(g) not in gens]
+    if missing:
+        raise OperatingPointError(f"{source}: no entry for in-service generator rows {missing[:10]}")
+    pg = np.array([float(gens[int(g)]["p_mw"]) for g in on]) / net.base_mva
+    if "buses" in data and all("q_mvar" in gens[int(g)] for g in on):
+        idx = net.bus_index
+        vm, va = np.zeros(net.n_bus), np.zeros(net.n_bus)
+        for b in data["buses"]:
+            if b["bus"] not in idx:
+                raise OperatingPointError(f"{source}: bus {b['bus']} is not in the network")
+            vm[idx[b["bus"]]], va[idx[b["bus"]]] = float(b["vm_pu"]), np.radians(float(b["va_deg"]))
+        qg = np.array([float(gens[int(g)]["q_mvar"]) for g in on]) / net.base_mva
+        return OperatingPoint(vm, va, pg, qg, data.get("objective"))
+    work = net.copy()
+    for k, g in enumerate(on):
+        work.gen[g, PG] = pg[k] * net.base_mva
+        work.gen[g, VG] = float(gens[int(g)]["vm_pu"])
+    return _power_flow_point(work)
+
+
+def _power_flow_point(net: Network) -> OperatingPoint:
+    s, pv, pq = net.bus_kinds()
+    gb = net.gen_bus_idx()
+    on = net.gen_on
+    sg = np.zeros(net.n_bus, dtype=complex)
+    np.add.at(sg, gb, net.gen[on, PG] / net.base_mva)
+    vm = np.ones(net.n_bus)
+    vm[gb] = net.gen[on, VG]
+    res = newton_power_flow(net.admittance()[0], sg - net.load_pu(), vm.astype(complex), s, pv, pq)
+    if not res.converged:
+        raise OperatingPointError(f"{net.source}: the power flow for the given set-points does not converge "
+                                  f"(mismatch {res.mismatch_pu:.3g} pu)")
+    v = res.voltage
+    s_bus = v * np.conj(net.admittance()[0] @ v) + net.load_pu()
+    pg, qg = net.gen[on, PG] / net.base_mva, np.zeros(len(on))
+    for b in np.unique(gb):  # share the bus's Q (and slack P) among its generators equally
+        ks = np.flatnonzero(gb == b)
+        qg[ks] = s_bus[b].imag / len(ks)
+        if b == s:
+            pg[ks] = s_bus[b].real / len(ks)
+    return OperatingPoint(np.abs(v), np.angle(v), pg, qg, None)
+
+
+def certify_case(case: str | Path | Network, uncertain: str | Sequence[int] = "loads", band: float = 0.05,
+                 objective: Objective = "uniform", margin: float = 0.1, point: dict | None = None,
+                 policy: str = "slack", options: CertifyOptions = CertifyOptions()) -> CaseCertificate:
+    """Operating point (margin AC-OPF, or ``point``), then the certificate for the chosen uncertainty."""
+    net = case if isinstance(case, Network) else read_case(case)
+    injections, scenario = scenario_injections(net, uncertain, band)
+    opf = None
+    if point is None:
+        opf = solve_opf(net, margin)
+        op = opf.point
+    else:
+        op = point_from_json(net, point)
+    nsys = build_system(net, op, injections, policy)  # type: ignore[arg-type]
+    cert = certify(nsys.system, nsys.point, objective, options=options)
+    return CaseCertificate(net, nsys, cert, opf, band, scenario)
+
+
+def result_to_json(res: CaseCertificate) -> dict:
+    """The result file (see docs/file-format.md)."""
+    net, cert, nsys = res.network, res.certificate, res.nsys
+    base = net.base_mva
+    op = nsys.operating_point
+    s_bus = np.zeros(net.n_bus, dtype=complex)
+    np.add.at(s_bus, net.gen_bus_idx(), op.pg_pu + 1j * op.qg_pu)
+    s_bus -= net.load_pu()
+    idx = net.bus_index
+    box = []
+    for k, inj in enumerate(nsys.injections):
+        nominal = (s_bus[idx[inj.bus]].real if inj.quantity == "p" else s_bus[idx[inj.bus]].imag) * base
+        box.append({"bus": inj.bus, "quantity": inj.quantity, "unit": "MW" if inj.quantity == "p" else "Mvar",
+                    "nominal": float(nominal), "lower": float(nominal + cert.lower[k] * base),
+                    "upper": float(nominal + cert.upper[k] * base),
+                    "requested_lower": float(nominal - inj.lower_pu * base),
+                    "requested_upper": float(nominal + inj.upper_pu * base)})
+    pt = point_to_json(net, op)
+    pt.update({"slack_bus": int(net.bus[nsys.slack, BUS_I]), "policy": nsys.describe_policy(),
+               "policy_kind": nsys.policy, "participation": [float(x) for x in nsys.participation]})
+    out = {
+        "format_version": FORMAT_VERSION, "case": str(net.source), "base_mva": base, "scenario": res.scenario,
+        "objective": cert.objective, "status": cert.status, "certified_fraction": min(cert.certified_fraction, 1e12),
+        "box": box, "operating_point": pt, "binding_limit": cert.binding, "worst_margin": cert.worst_margin,
+        "timings_s": cert.timings_s,
+        "caution": CAUTION,
+    }
+    if res.opf is not None:
+        out["opf"] = {"objective_per_h": res.opf.objective_per_h, "margin": res.opf.margin,
+                      "base_objective_per_h": res.opf.base_objective_per_h,
+                      "cost_increase_per_h": res.opf.cost_increase_per_h, "time_s": res.opf.time_s}
+    return out
+
+
+CAUTION = ("Results depend on the model data (impedances, limits, the operating point and the uncertainty you "
+           "chose). They are not a substitute for grid codes, protection studies or licensed engineering judgment.")
+
+
+def check_box(net: Network, data: dict, samples: int = 300, seed: int = 0, source: str = "box file",
+              progress=None) -> ValidationReport:
+    """Independent sampling validation of a saved result file against ``net``."""
+    try:
+        op = point_from_json(net, data["operating_point"], source)
+        entries = data["box"]
+        base = net.base_mva
+        injections, lower, upper = [], [], []
+        for e in entries:
+            q = e["quantity"]
+            if q not in ("p", "q"):
+                raise OperatingPointError(f"{source}: box entry at bus {e['bus']}: quantity must be p or q")
+            nominal = float(e["nominal"])
+            injections.append(Injection(int(e["bus"]), q, max(nominal - float(e["lower"]), 0.0) / base,
+                                        max(float(e["upper"]) - nominal, 0.0) / base))
+            lower.append((float(e["lower"]) - nominal) / base)
+            upper.append((float(e["upper"]) - nominal) / base)
+        kind = data["operating_point"].get("policy_kind", "slack")
+    except (KeyError, TypeError, ValueError) as exc:
+        raise OperatingPointError(f"{source}: not a robustbox result file (missing or bad field: {exc})") from None
+    for inj in injections:
+        if inj.bus not in net.bus_index:
+            raise NetworkError(f"{source}: box entry at bus {inj.bus}, which is not in the network")
+    part = np.asarray(data["operating_point"].get("participation", []), dtype=float) if kind == "distributed" else None
+    return validate_box(net, op, injections, np.array(lower), np.array(upper), kind, part, samples=samples,
+                        seed=seed, progress=progress)
+
+
+def save_json(data: dict, path: str | Path) -> None:
+    Path(path).write_text(json.dumps(data, indent=2, default=float), encoding="utf-8")
