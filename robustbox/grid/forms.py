@@ -81,7 +81,7 @@ def branch_flow_forms(net: Network) -> QuadraticMap:
     return QuadraticMap.from_terms(2 * n, names, quad, ([], [], []))
 
 
-def flow_polygon_forms(net: Network, faces: int = 12) -> tuple[QuadraticMap, np.ndarray]:
+def flow_polygon_forms(net: Network, faces: int = 24) -> tuple[QuadraticMap, np.ndarray]:
     """Faces cos φ P + sin φ Q of the branch-end flows, and their upper bounds (per unit).
 
     Only branches with a nonzero rating (rateA) are represented.

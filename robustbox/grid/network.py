@@ -115,9 +115,10 @@ class Network:
             raise NetworkError(f"{self.source}: mpc.gencost has {len(self.gencost)} rows for {len(gen)} generators")
         if self.gencost is not None:
             for r in range(len(gen)):
-                model, ncost = self.gencost[r, 0], self.gencost[r, 3]
-                need = 4 + int(ncost) * (2 if model == 1 else 1)
-                if model not in (1, 2) or ncost < 1 or need > self.gencost.shape[1] or np.any(np.isnan(self.gencost[r, :need])):
+                model, ncost = self.gencost[r, 0], self.gencost[r, 3] if self.gencost.shape[1] > 3 else np.nan
+                ok = model in (1, 2) and np.isfinite(ncost) and ncost >= 1 and ncost == int(ncost)
+                need = 4 + int(ncost) * (2 if model == 1 else 1) if ok else 0
+                if not ok or need > self.gencost.shape[1] or np.any(np.isnan(self.gencost[r, :need])):
                     raise NetworkError(f"{self.where('gencost', r)}: cost model {model:g} with {ncost:g} "
                                        f"coefficients does not fit the row")
 

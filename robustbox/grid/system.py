@@ -91,7 +91,7 @@ def _per_bus_sum(net: Network, values: np.ndarray) -> np.ndarray:
 
 
 def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injection], policy: Policy = "slack",
-                 participation: np.ndarray | None = None, flow_faces: int = 12) -> NetworkSystem:
+                 participation: np.ndarray | None = None, flow_faces: int = 24) -> NetworkSystem:
     """Build the :class:`NetworkSystem` for ``injections`` around the operating point ``op``."""
     n = net.n_bus
     s, pv, pq = net.bus_kinds()
