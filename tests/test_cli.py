@@ -1,0 +1,74 @@
+"""The command line: demo, certify → check, and every error path."""
+from __future__ import annotations
+
+import json
+
+import pytest
+
+from conftest import pglib_case
+from robustbox.cli import demo_case_path, main
+
+
+def test_demo_writes_report_with_figures(tmp_path, capsys):
+    assert main(["demo", "--out", str(tmp_path)]) == 0
+    html = (tmp_path / "report.html").read_text()
+    assert "Caution" in html and "data:image/png;base64," in html
+    for fig in ("envelope.png", "slice.png", "network.png"):
+        assert (tmp_path / fig).stat().st_size > 5000
+    data = json.loads((tmp_path / "box.json").read_text())
+    assert data["status"] == "certified" and 0 < data["certified_fraction"] <= 1
+    assert "0 violations" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize("case, margin", [("demo", "0.1"), ("pglib_opf_case14_ieee", "0.05"),
+                                          ("pglib_opf_case30_ieee", "0.02"), ("pglib_opf_case118_ieee", "0.05")])
+def test_certify_then_check_reports_no_violation(tmp_path, case, margin, capsys):
+    path = str(demo_case_path() if case == "demo" else pglib_case(case))
+    out = tmp_path / "box.json"
+    assert main(["certify", path, "--uncertain", "loads", "--band", "0.1", "--margin", margin, "--out", str(out)]) == 0
+    data = json.loads(out.read_text())
+    for key in ("case", "base_mva", "certified_fraction", "box", "operating_point", "binding_limit", "timings_s"):
+        assert key in data
+    assert {"bus", "quantity", "unit", "nominal", "lower", "upper"} <= set(data["box"][0])
+    assert main(["check", path, str(out), "--samples", "150", "--quiet"]) == 0
+    assert "0 with violations" in capsys.readouterr().out
+
+
+def test_check_exits_1_on_enlarged_box(tmp_path, capsys):
+    path = str(demo_case_path())
+    out = tmp_path / "box.json"
+    assert main(["certify", path, "--uncertain", "renewables", "--band", "1.0", "--out", str(out)]) == 0
+    data = json.loads(out.read_text())
+    for e in data["box"]:
+        e["upper"] = e["nominal"] + 40 * (e["requested_upper"] - e["nominal"])
+    out.write_text(json.dumps(data))
+    assert main(["check", path, str(out), "--samples", "60", "--quiet"]) == 1
+    assert "with violations" in capsys.readouterr().out
+
+
+def test_opf_command_writes_point(tmp_path):
+    out = tmp_path / "point.json"
+    assert main(["opf", str(demo_case_path()), "--margin", "0.1", "--out", str(out)]) == 0
+    data = json.loads(out.read_text())
+    assert data["objective"] > 0 and {"bus", "index", "p_mw", "vm_pu"} <= set(data["generators"][0])
+    box = tmp_path / "box.json"
+    assert main(["certify", str(demo_case_path()), "--point", str(out), "--uncertain", "9,17", "--band", "0.2",
+                 "--out", str(box)]) == 0
+
+
+@pytest.mark.parametrize("args, message", [
+    (["certify", "/nonexistent/case.m"], "cannot read the file"),
+    (["certify", "BADCASE"], "expected a number"),
+    (["certify", "DEMO", "--band", "0"], "band must be positive"),
+    (["certify", "DEMO", "--band", "-0.1"], "band must be positive"),
+    (["certify", "DEMO", "--uncertain", "9999"], "bus 9999 is not in the network"),
+    (["certify", "DEMO", "--margin", "0.45"], "AC-OPF with margin 0.45"),
+])
+def test_cli_errors_are_one_line(tmp_path, capsys, args, message):
+    bad = tmp_path / "bad.m"
+    bad.write_text("mpc.baseMVA = oops;\n")
+    args = [str(bad) if a == "BADCASE" else str(demo_case_path()) if a == "DEMO" else a for a in args]
+    code = main(args)
+    err = capsys.readouterr().err.strip()
+    assert code in (2, 3)
+    assert message in err and "Traceback" not in err and len(err.splitlines()) == 1
