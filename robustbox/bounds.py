@@ -115,7 +115,7 @@ class RemainderBound:
             pos_diag, neg_diag, off = self._combined
             m = off.shape[1]
             om2 = inflate(omega * omega, 1)
-            cross = inflate(np.einsum("jkl,k,l->j", off, omega, omega), m * m + 2)
+            cross = inflate((off.reshape(-1, m) @ omega).reshape(-1, m) @ omega, m * m + 2)
             chi = inflate(cross + pos_diag @ om2, m + 3)
             clo = -inflate(cross + neg_diag @ om2, m + 3)
             lo, hi = np.maximum(lo, clo), np.minimum(hi, chi)

@@ -273,7 +273,7 @@ class _Conditions:
         return ConditionCheck(holds, float(worst), binding, smin, lmin)
 
     def least_omega(self, lower: np.ndarray, upper: np.ndarray, inflation: float, max_iter: int,
-                    start: np.ndarray | None = None) -> tuple[bool, np.ndarray]:
+                    start: np.ndarray | None = None, stop_on_limits: bool = True) -> tuple[bool, np.ndarray]:
         """(found, ω): the smallest ω (up to inflation) with T̂(ω) ≤ ω and all limits holding.
 
         When none is found, ``found`` is False and ω is the last iterate.
@@ -290,7 +290,8 @@ class _Conditions:
         for _ in range(max_iter):
             terms = self.region_terms(omega)
             with np.errstate(invalid="ignore"):
-                if np.any(terms["lim_up"] + cp_max > sys_.limit_upper) or np.any(terms["lim_lo"] - cp_neg < sys_.limit_lower):
+                if stop_on_limits and (np.any(terms["lim_up"] + cp_max > sys_.limit_upper)
+                                       or np.any(terms["lim_lo"] - cp_neg < sys_.limit_lower)):
                     return False, omega
             that = self.bound_map(omega, ep_max, ep_neg, terms)
             if not np.all(np.isfinite(that)):
@@ -321,8 +322,11 @@ def _uniform(eng: _Conditions, opts: CertifyOptions, wl: np.ndarray, wu: np.ndar
 
     omega0 = it(0.0)
     if omega0 is None:
-        raise CertificateError("no certificate even for a zero box: the self-mapping condition fails at the "
-                               "operating point (residual or Jacobian too poor) or a limit has no room")
+        _, last = eng.least_omega(0 * wl, 0 * wu, opts.inflation, opts.max_iterations, stop_on_limits=False)
+        why = eng.check(0 * wl, 0 * wu, last)
+        raise CertificateError(f"no certificate even for a zero box: {why.binding} fails (normalised margin "
+                               f"{why.worst_margin:.3g}); the residual or Jacobian at the operating point leaves "
+                               "no self-mapping region, or that limit has no room")
     best_t, best_omega = 0.0, omega0
     hi = opts.max_fraction
     om = it(hi, best_omega)
@@ -474,8 +478,9 @@ def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "
                                   f"{residual[worst]:.3g} in '{eq.names[worst]}' exceeds the tolerance "
                                   f"{options.residual_tolerance:g}")
     h = system.limits.evaluate(point)
-    viol = [f"'{system.limits.names[t]}' = {h[t]:.6g} outside [{system.limit_lower[t]:.6g}, {system.limit_upper[t]:.6g}]"
-            for t in np.flatnonzero((h > system.limit_upper) | (h < system.limit_lower))]
+    excess = np.maximum(h - system.limit_upper, system.limit_lower - h)
+    viol = [f"'{system.limits.names[t]}' = {h[t]:.9g} outside [{system.limit_lower[t]:.9g}, {system.limit_upper[t]:.9g}]"
+            f" by {excess[t]:.3g}" for t in np.flatnonzero(excess > 0)]
     if viol:
         raise OperatingPointError("the operating point violates " + f"{len(viol)} limit(s), so the box is empty: "
                                   + "; ".join(viol[:10]) + (" ..." if len(viol) > 10 else ""), viol)

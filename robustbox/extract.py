@@ -10,7 +10,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from pyomo.core.expr.visitor import identify_variables
 from pyomo.environ import Constraint, Objective, Var, maximize, value
 from pyomo.repn.standard_repn import generate_standard_repn
 
@@ -42,7 +41,11 @@ class CompiledModel:
             var.set_value(float(val), skip_validation=True)
 
 
-def _quadratic_repn(expr, name: str, index: dict[int, int], variables: list) -> tuple[list, list, float]:
+def quadratic_repn(expr, name: str, index: dict[int, int], variables: list) -> tuple[list, list, float]:
+    """(linear terms, quadratic terms, constant) of ``expr``, numbering new variables into ``index``.
+
+    Raises ModelStructureError naming ``name`` when the expression is not quadratic.
+    """
     repn = generate_standard_repn(expr, quadratic=True, compute_values=True)
     if repn.nonlinear_expr is not None:
         raise ModelStructureError(f"constraint or objective '{name}' is not quadratic in the variables "
@@ -58,15 +61,15 @@ def _quadratic_repn(expr, name: str, index: dict[int, int], variables: list) -> 
     return lin, quad, float(value(repn.constant))
 
 
-def compile_model(model, *, constraints: list | None = None) -> CompiledModel:
-    """Compile the active constraints (or the given ones) and the active objective."""
+def compile_model(model, *, constraints: list | None = None, objective: bool = True) -> CompiledModel:
+    """Compile the active constraints (or the given ones) and, if ``objective``, the active objective."""
     index: dict[int, int] = {}
     variables: list = []
     cons = list(constraints) if constraints is not None else list(
         model.component_data_objects(Constraint, active=True, descend_into=True))
     q_r, q_a, q_b, q_v, l_r, l_c, l_v, const, lo, up, names = [], [], [], [], [], [], [], [], [], [], []
     for r, con in enumerate(cons):
-        lin, quad, c = _quadratic_repn(con.body, con.name, index, variables)
+        lin, quad, c = quadratic_repn(con.body, con.name, index, variables)
         for a, b, v in quad:
             q_r.append(r); q_a.append(a); q_b.append(b); q_v.append(v)  # noqa: E702
         for a, v in lin:
@@ -75,14 +78,14 @@ def compile_model(model, *, constraints: list | None = None) -> CompiledModel:
         lo.append(-np.inf if con.lower is None else float(value(con.lower)))
         up.append(np.inf if con.upper is None else float(value(con.upper)))
         names.append(con.name)
-    objs = list(model.component_data_objects(Objective, active=True, descend_into=True))
+    objs = list(model.component_data_objects(Objective, active=True, descend_into=True)) if objective else []
     if len(objs) > 1:
         raise ModelStructureError(f"the model has {len(objs)} active objectives; deactivate all but one")
     obj_terms = ([], [], 0.0)
     sign = 1.0
     if objs:
         sign = -1.0 if objs[0].sense == maximize else 1.0
-        obj_terms = _quadratic_repn(objs[0].expr, objs[0].name, index, variables)
+        obj_terms = quadratic_repn(objs[0].expr, objs[0].name, index, variables)
     for v in model.component_data_objects(Var, active=True, descend_into=True):
         if not v.fixed and id(v) not in index:
             index[id(v)] = len(variables)
@@ -97,7 +100,3 @@ def compile_model(model, *, constraints: list | None = None) -> CompiledModel:
     vup = np.array([np.inf if v.ub is None else float(v.ub) for v in variables])
     return CompiledModel(variables, cons, rows, np.array(lo), np.array(up), objective, sign, vlo, vup)
 
-
-def variables_in(expr) -> list:
-    """The unfixed variables of a Pyomo expression."""
-    return [v for v in identify_variables(expr, include_fixed=False)]

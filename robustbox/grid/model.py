@@ -72,9 +72,11 @@ def build_opf(net: Network, margin: float = 0.0) -> pyo.ConcreteModel:
     gens_at = [[] for _ in range(n)]
     for g, b in enumerate(gb):
         gens_at[b].append(g)
-    pd, qd = net.bus[:, PD] / base, net.bus[:, QD] / base
-    m.p_balance = pyo.Constraint(m.B, rule=lambda mm, i: sum(mm.pg[g] for g in gens_at[i]) - pd[i] == inj[i])
-    m.q_balance = pyo.Constraint(m.B, rule=lambda mm, i: sum(mm.qg[g] for g in gens_at[i]) - qd[i] == inj[n + i])
+    # loads are mutable parameters (per unit) so that a model user can move them
+    m.pd = pyo.Param(m.B, mutable=True, initialize=lambda _, i: float(net.bus[i, PD] / base))
+    m.qd = pyo.Param(m.B, mutable=True, initialize=lambda _, i: float(net.bus[i, QD] / base))
+    m.p_balance = pyo.Constraint(m.B, rule=lambda mm, i: sum(mm.pg[g] for g in gens_at[i]) - mm.pd[i] == inj[i])
+    m.q_balance = pyo.Constraint(m.B, rule=lambda mm, i: sum(mm.qg[g] for g in gens_at[i]) - mm.qd[i] == inj[n + i])
     m.voltage = pyo.Constraint(m.B, rule=lambda mm, i: (vmin[i] ** 2, mm.x[i] ** 2 + mm.x[n + i] ** 2, vmax[i] ** 2))
     # branch flows (exact circle through auxiliary variables)
     br = net.branch[net.branch_on]
