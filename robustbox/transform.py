@@ -269,6 +269,14 @@ def _build_system(model, config, injections: list, bands: list) -> tuple[_Record
     return record, system, np.array([float(v.value) for v in recourse])
 
 
+def _set(component, val: float) -> None:
+    """Set a Var or mutable Param value without bound validation (probing moves past bounds)."""
+    if component.is_variable_type():
+        component.set_value(val, skip_validation=True)
+    else:
+        component.set_value(val)
+
+
 def _injection_maps(cons: list, eq_rows: np.ndarray, lim_rows: np.ndarray, injections: list
                     ) -> tuple[list[np.ndarray], list[np.ndarray]]:
     """Columns of E (equalities) and A (limits): how each injection enters each row.
@@ -302,9 +310,9 @@ def _injection_maps(cons: list, eq_rows: np.ndarray, lim_rows: np.ndarray, injec
             con = cons[r]
             sig = [signature(con)]
             for step in (1.0, 2.0):
-                inj.set_value(v0 + step)
+                _set(inj, v0 + step)
                 sig.append(signature(con))
-            inj.set_value(v0)
+            _set(inj, v0)
             (c0, k0, lo0, up0), (c1, k1, lo1, up1), (c2, k2, lo2, up2) = sig
             same = set(c1) == set(c0) == set(c2) and all(
                 abs(c1[key] - val) <= 1e-12 * (1 + abs(val)) and abs(c2[key] - val) <= 1e-12 * (1 + abs(val))
