@@ -9,11 +9,15 @@ implemented; :class:`RemainderBound` takes the tightest valid one row by row.
 ``eigen``     signed eigen-split: Q_j = Σ λ_i v_i v_iᵀ, and |v_iᵀ K w| ≤ |v_iᵀ K| ω
               exactly, so the positive eigenvalues bound from above and the
               negative ones from below.
+``anchored``  the same split after taking out one direction u_j per row (the
+              system's symmetry direction at the operating point, e.g. a common
+              rotation of all voltage angles): q = q_u α² + 2 α (c_jᵀd) + Σ λ_i (v_iᵀd)²
+              with α = u_jᵀd, so terms that cancel along u_j are not bounded apart.
 ``combined``  combine before taking absolute values: M_j = Kᵀ Q_j K and
               wᵀ M_j w ≤ Σ M_kk⁺ ω_k² + Σ_(k≠l) |M_kl| ω_k ω_l.  Dense m×m per
-              row, so used only for small systems.
+              row, so used only while rows·m² ≤ combined_max_size (25 million entries, 200 MB, by default).
 
-All three are evaluated with proven floating-point error bounds.
+All are evaluated with proven floating-point error bounds.
 """
 from __future__ import annotations
 
@@ -25,20 +29,20 @@ import scipy.sparse as sp
 from .quadratic import QuadraticMap
 from .rounding import gamma, inflate, matvec_upper
 
-METHODS = ("plain", "eigen", "combined")
+METHODS = ("plain", "eigen", "anchored", "combined")
 
 
 @dataclass(frozen=True)
 class RemainderOptions:
     """Which remainder bounds to use.
 
-    ``methods``: any of "plain", "eigen", "combined"; the tightest is taken
-    row by row.  ``combined_max_size``: the combined bound stores an m×m
+    ``methods``: any of "plain", "eigen", "anchored", "combined"; the tightest
+    is taken row by row ("anchored" needs a symmetry direction from the system).  ``combined_max_size``: the combined bound stores an m×m
     matrix per row and is skipped when rows·m² exceeds this number.
     """
 
     methods: tuple[str, ...] = METHODS
-    combined_max_size: int = 4_000_000
+    combined_max_size: int = 25_000_000
 
 
 def _aggregate(split, mask: np.ndarray, n_rows: int) -> sp.csr_matrix:
@@ -47,11 +51,49 @@ def _aggregate(split, mask: np.ndarray, n_rows: int) -> sp.csr_matrix:
                          shape=(n_rows, len(split.eigenvalues)))
 
 
+def _projection(directions: sp.csr_matrix, k_matrix: np.ndarray, abs_k: np.ndarray) -> np.ndarray:
+    """Proven upper bound of |D K| for sparse directions D: |fl(DK)| + γ |D| |K| (Higham, Lemma 3.1)."""
+    inner = int(np.diff(directions.indptr).max(initial=1))
+    dk = np.asarray(directions @ k_matrix)
+    return np.abs(dk) + inflate(gamma(inner + 1) * np.asarray(abs(directions) @ abs_k), inner)
+
+
+class _SplitBound:
+    """Bounds from one split (plain eigen, or anchored) of every row."""
+
+    def __init__(self, split, k_matrix: np.ndarray, abs_k: np.ndarray, n_rows: int) -> None:
+        self.split, self.n_rows = split, n_rows
+        self.proj = _projection(split.directions, k_matrix, abs_k)
+        pos = split.eigenvalues > 0
+        self.agg_pos, self.agg_neg = _aggregate(split, pos, n_rows), _aggregate(split, ~pos, n_rows)
+        self.anchored = split.anchor.nnz > 0
+        if self.anchored:
+            self.u_proj = _projection(split.anchor, k_matrix, abs_k)
+            self.c_proj = _projection(split.cross, k_matrix, abs_k)
+            self.q_pos, self.q_neg = np.maximum(split.anchor_q, 0.0), np.maximum(-split.anchor_q, 0.0)
+
+    def __call__(self, omega: np.ndarray, delta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        split = self.split
+        rho2 = inflate(np.square(matvec_upper(self.proj, omega)), 1)
+        res = split.residual_val * delta[split.residual_a] * delta[split.residual_b]
+        res = np.where(split.residual_a == split.residual_b, res, 2.0 * res)
+        resid = inflate(np.bincount(split.residual_row, weights=res, minlength=self.n_rows),
+                        int(np.bincount(split.residual_row).max(initial=1)) + 2)
+        hi = matvec_upper(self.agg_pos, rho2) + resid
+        lo = matvec_upper(self.agg_neg, rho2) + resid
+        if self.anchored:
+            ru, rc = matvec_upper(self.u_proj, omega), matvec_upper(self.c_proj, omega)
+            ru2, cross = inflate(ru * ru, 1), inflate(2.0 * ru * rc, 2)
+            hi = hi + inflate(self.q_pos * ru2, 1) + cross
+            lo = lo + inflate(self.q_neg * ru2, 1) + cross
+        return -inflate(lo, 4), inflate(hi, 4)
+
+
 class RemainderBound:
     """Proven bounds of dᵀ Q_j d over d = K w, |w| ≤ ω, for every row j."""
 
     def __init__(self, qmap: QuadraticMap, k_matrix: np.ndarray, abs_k: np.ndarray,
-                 options: RemainderOptions = RemainderOptions()) -> None:
+                 options: RemainderOptions = RemainderOptions(), anchor: np.ndarray | None = None) -> None:
         unknown = set(options.methods) - set(METHODS)
         if unknown or not options.methods:
             raise ValueError(f"remainder methods must be a non-empty subset of {METHODS}, got {options.methods}")
@@ -59,20 +101,19 @@ class RemainderBound:
         self.abs_k = abs_k
         self.methods = tuple(options.methods)
         m = k_matrix.shape[1]
-        self._eigen = None
+        self._splits = []
         self._combined = None
-        if "eigen" in self.methods and qmap.n_rows:
-            split = qmap.eigen_split()
-            vk = np.asarray(split.directions @ k_matrix)
-            absv = abs(split.directions)
-            inner = int(np.diff(split.directions.indptr).max(initial=1))
-            # |v_iᵀ K| ≤ |fl(v_iᵀ K)| + γ |v_i|ᵀ |K|   (Higham, Lemma 3.1)
-            proj = np.abs(vk) + inflate(gamma(inner + 1) * np.asarray(absv @ abs_k), inner)
-            pos = split.eigenvalues > 0
-            self._eigen = (proj, _aggregate(split, pos, qmap.n_rows), _aggregate(split, ~pos, qmap.n_rows), split)
+        if qmap.n_rows and "eigen" in self.methods:
+            self._splits.append(_SplitBound(qmap.eigen_split(), k_matrix, abs_k, qmap.n_rows))
+        if qmap.n_rows and "anchored" in self.methods and anchor is not None and np.any(anchor):
+            self._splits.append(_SplitBound(qmap.eigen_split(anchor), k_matrix, abs_k, qmap.n_rows))
         if ("combined" in self.methods and qmap.n_rows
                 and qmap.n_rows * m * m <= options.combined_max_size):
             self._combined = self._build_combined(k_matrix, abs_k)
+        if not ("plain" in self.methods or self._splits or self._combined is not None or not qmap.n_rows):
+            raise ValueError(f"none of the remainder methods {self.methods} applies here (the combined bound "
+                             f"needs {qmap.n_rows * m * m} entries > combined_max_size; 'anchored' needs a "
+                             "symmetry direction); add 'plain' or 'eigen'")
 
     def _build_combined(self, k_matrix: np.ndarray, abs_k: np.ndarray) -> tuple[np.ndarray, ...]:
         qm, m = self.qmap, k_matrix.shape[1]
@@ -101,16 +142,9 @@ class RemainderBound:
         if "plain" in self.methods:
             plo, phi = qm.plain_bounds(delta)
             lo, hi = np.maximum(lo, plo), np.minimum(hi, phi)
-        if self._eigen is not None:
-            proj, agg_pos, agg_neg, split = self._eigen
-            rho2 = inflate(np.square(matvec_upper(proj, omega)), 1)
-            res = split.residual_val * delta[split.residual_a] * delta[split.residual_b]
-            res = np.where(split.residual_a == split.residual_b, res, 2.0 * res)
-            resid = inflate(np.bincount(split.residual_row, weights=res, minlength=qm.n_rows),
-                            int(np.bincount(split.residual_row).max(initial=1)) + 2)
-            ehi = inflate(matvec_upper(agg_pos, rho2) + resid, 2)
-            elo = -inflate(matvec_upper(agg_neg, rho2) + resid, 2)
-            lo, hi = np.maximum(lo, elo), np.minimum(hi, ehi)
+        for split in self._splits:
+            slo, shi = split(omega, delta)
+            lo, hi = np.maximum(lo, slo), np.minimum(hi, shi)
         if self._combined is not None:
             pos_diag, neg_diag, off = self._combined
             m = off.shape[1]

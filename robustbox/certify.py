@@ -175,7 +175,8 @@ class _Conditions:
         value, err = eq.evaluate_with_error(point)
         self.r0 = value - system.target
         self.r0_err = inflate(err + sum_error(value, system.target), 1)
-        self.eq_bound = RemainderBound(eq, k, self.abs_k, remainder)
+        anchor = None if system.symmetry is None else np.asarray(system.symmetry @ point).ravel()
+        self.eq_bound = RemainderBound(eq, k, self.abs_k, remainder, anchor)
         e = unc.equation_map
         self.e_pos, self.e_neg = e.maximum(0).tocsr(), (-e).maximum(0).tocsr()
         # limits
@@ -189,12 +190,45 @@ class _Conditions:
         c = np.asarray(e.T @ g.T).T + unc.limit_map.toarray() if unc.size else np.zeros((lim.n_rows, 0))
         einner = int(np.diff(e.tocsc().indptr).max(initial=1)) if unc.size else 1
         self.c_err = inflate(gamma(einner + 2) * (np.abs(g) @ abs(e)) + 0.0, 1) if unc.size else c
-        self.c_pos, self.c_neg = np.maximum(c, 0.0), np.maximum(-c, 0.0)
-        self.lim_bound = RemainderBound(lim, k, self.abs_k, remainder)
-        self.lim_scale = np.where(np.isfinite(system.limit_upper - system.limit_lower),
-                                  np.maximum(system.limit_upper - system.limit_lower, 1e-9), 1.0)
-        unc_names = system.uncertain.names
-        self.names_eq, self.names_lim, self.names_unc = eq.names, lim.names, unc_names
+        # coefficient bounds of the injections in the limits: C⁺ + ΔC and C⁻ + ΔC
+        self.c_up, self.c_dn = np.maximum(c, 0.0) + self.c_err, np.maximum(-c, 0.0) + self.c_err
+        self.lim_bound = RemainderBound(lim, k, self.abs_k, remainder, anchor)
+        n_der = 0 if system.derived is None else system.derived.shape[0]
+        w = system.derived if n_der else sp.csr_matrix((0, lim.n_rows))
+        self.w_pos, self.w_neg = w.maximum(0).tocsr(), (-w).maximum(0).tocsr()
+        self.w_terms = int(np.diff(w.indptr).max(initial=1))
+        self.row_upper = np.concatenate([system.limit_upper, system.derived_upper if n_der else np.zeros(0)])
+        self.row_lower = np.concatenate([system.limit_lower, np.full(n_der, -np.inf)])
+        width = self.row_upper - self.row_lower
+        self.lim_scale = np.where(np.isfinite(width), np.maximum(width, 1e-9),
+                                  np.maximum(np.abs(np.where(np.isfinite(self.row_upper), self.row_upper, 0.0)), 1e-9))
+        self.names_eq = eq.names
+        self.names_lim = tuple(lim.names) + tuple(system.derived_names)
+
+    def stack(self, up: np.ndarray, lo: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Bounds of all limit rows (monitored, then derived) from the monitored rows' bounds.
+
+        ``up``/``lo`` bound h + A p from above/below; a derived row W(h + A p) is
+        at most W⁺ up − W⁻ lo (with its rounding error added).
+        """
+        with np.errstate(invalid="ignore"):
+            up_f, lo_f = np.where(np.isfinite(up), up, 0.0), np.where(np.isfinite(lo), lo, 0.0)
+        d = self.w_pos @ up_f - self.w_neg @ lo_f
+        # |fl(W⁺u − W⁻l) − (W⁺u − W⁻l)| ≤ γ_(k+1) (W⁺|u| + W⁻|l|)   (Higham, Lemma 3.1)
+        mag = matvec_upper(self.w_pos, np.abs(up_f)) + matvec_upper(self.w_neg, np.abs(lo_f))
+        d = d + inflate(gamma(self.w_terms + 1) * mag, 2)
+        # a derived row that uses an unbounded monitored row is unbounded
+        bad = (self.w_pos @ (~np.isfinite(up)).astype(float) + self.w_neg @ (~np.isfinite(lo)).astype(float)) > 0
+        d = np.where(bad, np.inf, d)
+        return np.concatenate([up, d]), np.concatenate([lo, np.full(len(d), -np.inf)])
+
+    def stack_coefficients(self, c_up: np.ndarray, c_lo: np.ndarray) -> np.ndarray:
+        """Nonnegative growth coefficients of the upper bounds of all limit rows.
+
+        ``c_up`` (``c_lo``) is how fast the upper bound of h (of −h) grows; for a
+        derived row W⁺ c_up + W⁻ c_lo.
+        """
+        return np.concatenate([c_up, self.w_pos @ c_up + self.w_neg @ c_lo], axis=0)
 
     # pieces ------------------------------------------------------------
     def injection_terms(self, lower: np.ndarray, upper: np.ndarray) -> tuple[np.ndarray, ...]:
@@ -202,8 +236,8 @@ class _Conditions:
         u, ln = np.maximum(upper, 0.0), np.maximum(-lower, 0.0)
         ep_max = inflate(self.e_pos @ u + self.e_neg @ ln, 2 * self.system.uncertain.size)
         ep_neg = inflate(self.e_pos @ ln + self.e_neg @ u, 2 * self.system.uncertain.size)
-        cp_max = matvec_upper(self.c_pos + self.c_err, u) + matvec_upper(self.c_neg + self.c_err, ln)
-        cp_neg = matvec_upper(self.c_pos + self.c_err, ln) + matvec_upper(self.c_neg + self.c_err, u)
+        cp_max = matvec_upper(self.c_up, u) + matvec_upper(self.c_dn, ln)
+        cp_neg = matvec_upper(self.c_up, ln) + matvec_upper(self.c_dn, u)
         return ep_max, ep_neg, inflate(cp_max, 2), inflate(cp_neg, 2)
 
     def region_terms(self, omega: np.ndarray) -> dict[str, np.ndarray]:
@@ -241,14 +275,20 @@ class _Conditions:
         ep_max, ep_neg, cp_max, cp_neg = self.injection_terms(lower, upper)
         terms = terms or self.region_terms(omega)
         that = self.bound_map(omega, ep_max, ep_neg, terms)
+        up, lo = self.limit_bounds(terms, cp_max, cp_neg)
+        with np.errstate(invalid="ignore"):
+            mu = np.where(np.isfinite(self.row_upper), self.row_upper - up, np.inf)
+            ml = np.where(np.isfinite(self.row_lower), lo - self.row_lower, np.inf)
+        return omega - that, mu, ml
+
+    def limit_bounds(self, terms: dict[str, np.ndarray], cp_max: np.ndarray, cp_neg: np.ndarray
+                     ) -> tuple[np.ndarray, np.ndarray]:
+        """Proven upper and lower bounds of every limit row (monitored and derived)."""
         up = terms["lim_up"] + cp_max
         up = up + sum_error(terms["lim_up"], cp_max)
         lo = terms["lim_lo"] - cp_neg
         lo = lo - sum_error(terms["lim_lo"], cp_neg)
-        with np.errstate(invalid="ignore"):
-            mu = np.where(np.isfinite(self.system.limit_upper), self.system.limit_upper - up, np.inf)
-            ml = np.where(np.isfinite(self.system.limit_lower), lo - self.system.limit_lower, np.inf)
-        return omega - that, mu, ml
+        return self.stack(up, lo)
 
     def check(self, lower: np.ndarray, upper: np.ndarray, omega: np.ndarray) -> ConditionCheck:
         """Evaluate every condition; ``holds`` only if all hold with proven rounding."""
@@ -286,13 +326,13 @@ class _Conditions:
         omega = np.maximum(ep_max, ep_neg)
         if start is not None:
             omega = np.maximum(omega, start)
-        sys_ = self.system
         for _ in range(max_iter):
             terms = self.region_terms(omega)
-            with np.errstate(invalid="ignore"):
-                if stop_on_limits and (np.any(terms["lim_up"] + cp_max > sys_.limit_upper)
-                                       or np.any(terms["lim_lo"] - cp_neg < sys_.limit_lower)):
-                    return False, omega
+            if stop_on_limits:
+                up, lo = self.limit_bounds(terms, cp_max, cp_neg)
+                with np.errstate(invalid="ignore"):
+                    if np.any(up > self.row_upper) or np.any(lo < self.row_lower):
+                        return False, omega
             that = self.bound_map(omega, ep_max, ep_neg, terms)
             if not np.all(np.isfinite(that)):
                 return False, omega
@@ -351,10 +391,11 @@ def _max_t_at(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarra
     """Largest t for which [−t wl, t wu] satisfies every condition at this fixed ω (floating point)."""
     terms = eng.region_terms(omega)
     s_up, s_lo, c_up, c_lo = eng.injection_terms(-wl, wu)
-    sys_ = eng.system
+    up, lo = eng.stack(terms["lim_up"], terms["lim_lo"])
+    n_mon = len(c_lo)
     slack = np.concatenate([omega - np.maximum(terms["a_up"], 0), omega - np.maximum(terms["a_lo"], 0),
-                            sys_.limit_upper - terms["lim_up"], terms["lim_lo"] - sys_.limit_lower])
-    coef = np.concatenate([s_up, s_lo, c_up, c_lo])
+                            eng.row_upper - up, lo[:n_mon] - eng.row_lower[:n_mon]])
+    coef = np.concatenate([s_up, s_lo, eng.stack_coefficients(c_up, c_lo), c_lo])
     with np.errstate(invalid="ignore", divide="ignore"):
         if np.any(slack < 0):
             return -1.0
@@ -400,12 +441,14 @@ def _lp_box(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarray,
     """Maximise Σ weights·(u − l) at fixed ω with HiGHS; None if infeasible."""
     s = len(wl)
     terms = eng.region_terms(omega)
-    sys_ = eng.system
     e_pos, e_neg = eng.e_pos.toarray(), eng.e_neg.toarray()
-    cp, cn = eng.c_pos + eng.c_err, eng.c_neg + eng.c_err
-    a_rows = [np.hstack([e_pos, e_neg]), np.hstack([e_neg, e_pos]), np.hstack([cp, cn]), np.hstack([cn, cp])]
+    cp, cn = eng.c_up, eng.c_dn
+    up, lo = eng.stack(terms["lim_up"], terms["lim_lo"])
+    n_mon = cp.shape[0]
+    a_rows = [np.hstack([e_pos, e_neg]), np.hstack([e_neg, e_pos]),
+              eng.stack_coefficients(np.hstack([cp, cn]), np.hstack([cn, cp])), np.hstack([cn, cp])]
     rhs = [omega - np.maximum(terms["a_up"], 0), omega - np.maximum(terms["a_lo"], 0),
-           sys_.limit_upper - terms["lim_up"], terms["lim_lo"] - sys_.limit_lower]
+           eng.row_upper - up, lo[:n_mon] - eng.row_lower[:n_mon]]
     a_ub, b_ub = np.vstack(a_rows), np.concatenate(rhs)
     finite = np.isfinite(b_ub)
     a_ub, b_ub = a_ub[finite], b_ub[finite]

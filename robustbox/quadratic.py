@@ -30,11 +30,12 @@ def _int_array(x: Sequence[int] | np.ndarray) -> np.ndarray:
 
 @dataclass(frozen=True, eq=False)
 class EigenSplit:
-    """Signed eigen-decomposition of every row's local quadratic form.
+    """Signed split of every row's local quadratic form (see QuadraticMap.eigen_split).
 
-    Row j's form is Σ_i λ_i (v_iᵀ z)² + a residual whose elementwise absolute
-    value is bounded by ``residual`` (triples row, a, b, value ≥ 0, one per
-    unordered pair, for |zᵀ R_j z| ≤ Σ residual·|z_a||z_b|·(2 if a≠b)).
+    Row j's form is q_j (u_jᵀz)² + 2 (u_jᵀz)(c_jᵀz) + Σ_i λ_i (v_iᵀ z)² + a
+    residual whose elementwise absolute value is bounded by ``residual``
+    (triples row, a, b, value ≥ 0, one per unordered pair, for
+    |zᵀ R_j z| ≤ Σ residual·|z_a||z_b|·(2 if a≠b)); u_j = c_j = 0 without anchor.
     """
 
     directions: sp.csr_matrix  # R × n, row i is v_iᵀ
@@ -44,6 +45,9 @@ class EigenSplit:
     residual_a: np.ndarray
     residual_b: np.ndarray
     residual_val: np.ndarray
+    anchor: sp.csr_matrix  # rows × n, row j is u_j (empty rows without an anchor)
+    cross: sp.csr_matrix  # rows × n, row j is c_j = (I − u uᵀ) Q_j u_j
+    anchor_q: np.ndarray  # rows, u_jᵀ Q_j u_j
 
 
 @dataclass(frozen=True, eq=False)
@@ -260,10 +264,23 @@ class QuadraticMap:
             blocks.append((var, mat))
         return blocks
 
-    def eigen_split(self, tol: float = 1e-13) -> EigenSplit:
-        """Eigen-decomposition of each local Q_j, with a proven residual bound."""
-        if "eigen" in self._cache:
-            return self._cache["eigen"]
+    def eigen_split(self, anchor: np.ndarray | None = None, tol: float = 1e-13) -> EigenSplit:
+        """Split of each local Q_j with a proven residual bound.
+
+        Without ``anchor``: Q_j = Σ λ_i v_i v_iᵀ + R_j.  With an ``anchor``
+        vector (length n_vars), u = anchor restricted to the row's variables
+        and normalised, P = I − u uᵀ, c = P Q u, and
+
+            Q_j = (uᵀQu) u uᵀ + u cᵀ + c uᵀ + Σ λ_i v_i v_iᵀ + R_j
+
+        with (λ_i, v_i) the eigenpairs of P Q P.  For d = α u + P d this keeps
+        the part of a displacement along u apart; with u a symmetry direction
+        of the row (a rotation of all voltage angles), the large terms of
+        opposite sign cancel exactly instead of being bounded separately.
+        """
+        key = ("eigen", None if anchor is None else anchor.tobytes())
+        if key in self._cache:
+            return self._cache[key]
         blocks = self.local_blocks()
         by_size: dict[int, list[int]] = {}
         for j, (var, _) in enumerate(blocks):
@@ -271,15 +288,35 @@ class QuadraticMap:
                 by_size.setdefault(len(var), []).append(j)
         d_rows, d_cols, d_vals, lam_all, owner = [], [], [], [], []
         r_row, r_a, r_b, r_val = [], [], [], []
+        u_rows, u_cols, u_vals, c_vals, quu_all = [], [], [], [], np.zeros(self.n_rows)
         n_dir = 0
         for k, js in by_size.items():
             mats = np.stack([blocks[j][1] for j in js])
-            lam, vec = np.linalg.eigh(mats)  # (c, k), (c, k, k)
-            recon = np.einsum("cik,ck,cjk->cij", vec, lam, vec)
-            mag = np.einsum("cik,ck,cjk->cij", np.abs(vec), np.abs(lam), np.abs(vec)) + np.abs(mats)
-            res = np.abs(mats - recon) + gamma(3 * k + 6) * mag
+            u = np.zeros((len(js), k))
+            if anchor is not None:
+                u = np.stack([anchor[blocks[j][0]] for j in js])
+                norm = np.linalg.norm(u, axis=1)
+                u = np.where(norm[:, None] > 0, u / np.where(norm > 0, norm, 1.0)[:, None], 0.0)
+            qu = np.einsum("cij,cj->ci", mats, u)
+            quu = np.einsum("ci,ci->c", u, qu)
+            cross = qu - quu[:, None] * u
+            proj = np.eye(k)[None] - np.einsum("ci,cj->cij", u, u)
+            inner = np.einsum("cij,cjk,ckl->cil", proj, mats, proj)
+            lam, vec = np.linalg.eigh(0.5 * (inner + inner.transpose(0, 2, 1)))
+            uu = np.einsum("ci,cj->cij", u, u)
+            uc = np.einsum("ci,cj->cij", u, cross)
+            recon = np.einsum("cik,ck,cjk->cij", vec, lam, vec) + quu[:, None, None] * uu + uc + uc.transpose(0, 2, 1)
+            mag = (np.einsum("cik,ck,cjk->cij", np.abs(vec), np.abs(lam), np.abs(vec)) + np.abs(mats)
+                   + np.abs(quu)[:, None, None] * np.abs(uu) + 2 * np.abs(uc) + np.abs(uc.transpose(0, 2, 1)))
+            res = np.abs(mats - recon) + gamma(4 * k + 8) * mag
             for c, j in enumerate(js):
                 var = blocks[j][0]
+                if anchor is not None and np.any(u[c]):
+                    u_rows.append(np.full(k, j))
+                    u_cols.append(var)
+                    u_vals.append(u[c])
+                    c_vals.append(cross[c])
+                    quu_all[j] = quu[c]
                 scale = np.abs(lam[c]).max(initial=0.0)
                 for i in range(k):
                     if abs(lam[c, i]) <= tol * scale:
@@ -300,9 +337,13 @@ class QuadraticMap:
         cat = (lambda xs, dt=float: np.concatenate(xs).astype(dt) if xs else np.zeros(0, dtype=dt))
         directions = sp.csr_matrix((cat(d_vals), (cat(d_rows, np.int64), cat(d_cols, np.int64))),
                                    shape=(n_dir, self.n_vars))
+        shape = (self.n_rows, self.n_vars)
+        ui, uj = cat(u_rows, np.int64), cat(u_cols, np.int64)
         split = EigenSplit(directions, np.asarray(lam_all, dtype=float), np.asarray(owner, dtype=np.int64),
-                           cat(r_row, np.int64), cat(r_a, np.int64), cat(r_b, np.int64), cat(r_val))
-        self._cache["eigen"] = split
+                           cat(r_row, np.int64), cat(r_a, np.int64), cat(r_b, np.int64), cat(r_val),
+                           sp.csr_matrix((cat(u_vals), (ui, uj)), shape=shape),
+                           sp.csr_matrix((cat(c_vals), (ui, uj)), shape=shape), quu_all)
+        self._cache[key] = split
         return split
 
 
@@ -329,7 +370,15 @@ class UncertainSet:
 
 @dataclass(frozen=True, eq=False)
 class QuadraticSystem:
-    """Equations F(z) = target + E p and limits lower ≤ h(z) + A p ≤ upper."""
+    """Equations F(z) = target + E p and limits lower ≤ h(z) + A p ≤ upper.
+
+    Optional *derived limits* W (h + A p) ≤ derived_upper are combinations of
+    monitored rows (e.g. the faces of a branch-flow polygon built from the
+    branch's P and Q rows); they are bounded through the rows' own bounds.
+    An optional ``symmetry`` S (n × n) is a linear vector field that leaves the
+    rows (nearly) unchanged, e.g. a common rotation of all voltage angles; the
+    anchored remainder bound uses the direction S z̄.  Any S gives valid bounds.
+    """
 
     equations: QuadraticMap
     target: np.ndarray
@@ -338,6 +387,10 @@ class QuadraticSystem:
     limit_upper: np.ndarray
     uncertain: UncertainSet
     variable_names: tuple[str, ...]
+    derived: sp.csr_matrix | None = None
+    derived_upper: np.ndarray | None = None
+    derived_names: tuple[str, ...] = ()
+    symmetry: sp.csr_matrix | None = None
 
     def __post_init__(self) -> None:
         eq, lim, unc = self.equations, self.limits, self.uncertain
@@ -368,6 +421,15 @@ class QuadraticSystem:
         if bad.size:
             t = int(bad[0])
             raise QuadraticSystemError(f"limit '{lim.names[t]}': lower {self.limit_lower[t]} above upper {self.limit_upper[t]}")
+        if self.derived is not None:
+            d = self.derived
+            if d.shape[1] != lim.n_rows or np.shape(self.derived_upper) != (d.shape[0],) or len(self.derived_names) != d.shape[0]:
+                raise QuadraticSystemError(f"derived limits: matrix {d.shape}, {np.size(self.derived_upper)} bounds and "
+                                           f"{len(self.derived_names)} names for {lim.n_rows} limit rows")
+            if d.nnz and not np.all(np.isfinite(d.data)) or np.any(np.isnan(self.derived_upper)):
+                raise QuadraticSystemError("derived limits have a non-finite weight or a NaN bound")
+        if self.symmetry is not None and self.symmetry.shape != (n, n):
+            raise QuadraticSystemError(f"symmetry has shape {self.symmetry.shape}, expected ({n}, {n})")
         for mat, what in ((unc.equation_map, "equation"), (unc.limit_map, "limit")):
             if mat.nnz and not np.all(np.isfinite(mat.data)):
                 raise QuadraticSystemError(f"uncertain {what} map has a non-finite entry")

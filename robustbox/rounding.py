@@ -39,10 +39,10 @@ def inflate(x: np.ndarray | float, n: int) -> np.ndarray:
 
 def matvec_upper(a: np.ndarray | sp.spmatrix, x: np.ndarray) -> np.ndarray:
     """Guaranteed upper bound of ``a @ x`` for elementwise nonnegative a and x."""
-    inner = a.shape[1] if a.ndim == 2 else 1
     if sp.issparse(a):
-        a = sp.csr_matrix(a)
-        inner = int(np.diff(a.indptr).max(initial=1))
+        inner = int(np.diff(a.indptr).max(initial=1)) if a.format == "csr" else a.shape[1]
+    else:
+        inner = a.shape[1] if a.ndim == 2 else 1
     return inflate(a @ x, inner)
 
 

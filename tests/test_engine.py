@@ -32,7 +32,7 @@ def _dense_map(qs: np.ndarray, b: np.ndarray, names: list[str]) -> QuadraticMap:
     return QuadraticMap.from_terms(qs.shape[1], names, (rows, a_idx, b_idx, vals), (lr, lc, b[lr, lc]))
 
 
-def _random_system(seed: int, n: int, n_lim: int):
+def _random_system(seed: int, n: int, n_lim: int, extras: bool = False):
     rng = np.random.default_rng(seed)
     qs = rng.normal(scale=0.5, size=(n, n, n)) * (rng.random((n, n, n)) < 0.6)
     qs = 0.5 * (qs + qs.transpose(0, 2, 1))
@@ -49,7 +49,17 @@ def _random_system(seed: int, n: int, n_lim: int):
     band = rng.uniform(0.2, 1.0, size=(2, n))
     unc = UncertainSet(tuple(f"p{j}" for j in range(n)), sp.csr_matrix(np.eye(n)), sp.csr_matrix((n_lim, n)),
                        band[0], band[1])
-    system = QuadraticSystem(eq, f0, lim, h0 - room[0], h0 + room[1], unc, tuple(f"z{i}" for i in range(n)))
+    derived = derived_up = None
+    names: tuple[str, ...] = ()
+    symmetry = None
+    if extras and n_lim:
+        # derived rows W h ≤ W h0 + room, and an arbitrary "symmetry" field (any S gives valid bounds)
+        w = rng.normal(size=(2, n_lim))
+        derived, derived_up = sp.csr_matrix(w), w @ h0 + rng.uniform(0.1, 1.0, 2)
+        names = ("d0", "d1")
+        symmetry = sp.csr_matrix(rng.normal(size=(n, n)))
+    system = QuadraticSystem(eq, f0, lim, h0 - room[0], h0 + room[1], unc, tuple(f"z{i}" for i in range(n)),
+                             derived, derived_up, names, symmetry)
     return system, z0, (qs, b, hq, hb)
 
 
@@ -74,6 +84,8 @@ def _check_box(cert, system, z0, dense, points):
         h = np.einsum("tab,a,b->t", hq, z, z) + hb @ z
         assert np.all(h <= system.limit_upper + 1e-9) and np.all(h >= system.limit_lower - 1e-9), \
             f"limit violated at p={p}: h={h}"
+        if system.derived is not None:
+            assert np.all(system.derived @ h <= system.derived_upper + 1e-9), f"derived limit violated at p={p}"
 
 
 def _box_points(lower, upper, rng, interior=8):
@@ -81,16 +93,17 @@ def _box_points(lower, upper, rng, interior=8):
     return np.vstack([lower + corners * (upper - lower), lower + rng.random((interior, len(lower))) * (upper - lower)])
 
 
-@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=240, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(seed=st.integers(0, 2**31 - 1), n=st.integers(1, 4), n_lim=st.integers(0, 3),
-       objective=st.sampled_from(["uniform", "widths", "hosting"]))
-def test_random_systems_certified_boxes_have_roots_inside_limits(seed, n, n_lim, objective):
-    system, z0, dense = _random_system(seed, n, n_lim)
+       objective=st.sampled_from(["uniform", "widths", "hosting"]), extras=st.booleans())
+def test_random_systems_certified_boxes_have_roots_inside_limits(seed, n, n_lim, objective, extras):
+    system, z0, dense = _random_system(seed, n, n_lim, extras)
     if objective == "hosting":  # one-sided band: lower ends fixed at 0
         unc = system.uncertain
         system = QuadraticSystem(system.equations, system.target, system.limits, system.limit_lower,
                                  system.limit_upper, UncertainSet(unc.names, unc.equation_map, unc.limit_map,
-                                                                  np.zeros(n), unc.band_upper), system.variable_names)
+                                                                  np.zeros(n), unc.band_upper), system.variable_names,
+                                 system.derived, system.derived_upper, system.derived_names, system.symmetry)
     try:
         cert = certify(system, z0, objective, options=CertifyOptions(max_fraction=1.0))
     except CertificateError as exc:
@@ -155,9 +168,9 @@ def test_two_bus_line_load_stays_below_textbook_maximum():
 
 
 def test_remainder_bounds_are_each_valid_and_best_is_tightest():
-    system, z0, dense = _random_system(7, 3, 2)
     fr = {}
-    for method in ("plain", "eigen", "combined"):
+    system, z0, dense = _random_system(7, 3, 2, extras=True)
+    for method in ("plain", "eigen", "anchored", "combined"):
         cert = certify(system, z0, options=CertifyOptions(remainder=RemainderOptions(methods=(method,))))
         _check_box(cert, system, z0, dense, _box_points(cert.lower, cert.upper, np.random.default_rng(1)))
         fr[method] = cert.certified_fraction

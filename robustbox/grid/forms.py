@@ -8,10 +8,9 @@ For a complex admittance y = g + j b and buses a, b,
 
 so bus injections S_i = Σ_k V_i conj(Y_ik V_k), branch-end flows
 S_f = V_f conj(Yff V_f + Yft V_t) and |V_i|² = e_i² + f_i² are all quadratic.
-Branch apparent-power limits are represented by an inscribed regular
-polygon of ``faces`` faces in the (P, Q) plane, each face a quadratic form
-cos φ_k P + sin φ_k Q ≤ rate·cos(π/faces): inside the polygon implies inside
-the circle, so the representation is conservative (inner).  Angle-difference
+Branch apparent-power limits are represented (in :mod:`robustbox.grid.system`)
+by an inscribed regular polygon in the (P, Q) plane built on these flow rows.
+Angle-difference
 limits use the tangent form Im(V_f V̄_t) − tan(θmax) Re(V_f V̄_t) ≤ 0, valid
 for limits inside (−90°, 90°) with Re(V_f V̄_t) > 0 (wider limits are not
 represented, as in MATPOWER where ±360° means "no limit").
@@ -21,7 +20,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..quadratic import QuadraticMap
-from .network import ANGMAX, ANGMIN, RATE_A, Network
+from .network import ANGMAX, ANGMIN, Network
 
 
 def pair_terms(y: np.ndarray, a: np.ndarray, b: np.ndarray, n: int) -> tuple[tuple[np.ndarray, ...], tuple[np.ndarray, ...]]:
@@ -79,39 +78,6 @@ def branch_flow_forms(net: Network) -> QuadraticMap:
         tag = f"{fb}-{tb}#{r + 1}"
         names += [f"Pf[{tag}]", f"Qf[{tag}]", f"Pt[{tag}]", f"Qt[{tag}]"]
     return QuadraticMap.from_terms(2 * n, names, quad, ([], [], []))
-
-
-def flow_polygon_forms(net: Network, faces: int = 24) -> tuple[QuadraticMap, np.ndarray]:
-    """Faces cos φ P + sin φ Q of the branch-end flows, and their upper bounds (per unit).
-
-    Only branches with a nonzero rating (rateA) are represented.
-    """
-    flows = branch_flow_forms(net)
-    rated = np.flatnonzero(net.branch[net.branch_on, RATE_A] > 0)
-    phis = 2.0 * np.pi * np.arange(faces) / faces
-    order = np.argsort(flows.q_row, kind="stable")
-    starts = np.searchsorted(flows.q_row[order], np.arange(flows.n_rows + 1))
-    rows_q, a_q, b_q, v_q, names, upper = [], [], [], [], [], []
-    out = 0
-    for k in rated:
-        rate = net.branch[net.branch_on[k], RATE_A] / net.base_mva
-        for end in (0, 1):
-            prow = 4 * k + 2 * end
-            ip, iq = order[starts[prow]:starts[prow + 1]], order[starts[prow + 1]:starts[prow + 2]]
-            a = np.concatenate([flows.q_a[ip], flows.q_a[iq]])
-            b = np.concatenate([flows.q_b[ip], flows.q_b[iq]])
-            weight = np.concatenate([np.cos(phis)[:, None] * flows.q_val[ip], np.sin(phis)[:, None] * flows.q_val[iq]], axis=1)
-            rows_q.append(np.repeat(np.arange(out, out + faces), len(a)))
-            a_q.append(np.tile(a, faces))
-            b_q.append(np.tile(b, faces))
-            v_q.append(weight.reshape(-1))
-            tag = flows.names[prow][3:-1]
-            names += [f"S{'ft'[end]}[{tag}]@{np.degrees(phi):.0f}deg" for phi in phis]
-            upper += [rate * np.cos(np.pi / faces)] * faces
-            out += faces
-    cat = (lambda xs: np.concatenate(xs) if xs else np.zeros(0))
-    qmap = QuadraticMap.from_terms(2 * net.n_bus, names, (cat(rows_q), cat(a_q), cat(b_q), cat(v_q)), ([], [], []))
-    return qmap, np.asarray(upper, dtype=float)
 
 
 def angle_forms(net: Network) -> QuadraticMap:

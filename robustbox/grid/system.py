@@ -9,8 +9,12 @@ in proportion to participation factors (default: their P range), P is an
 equation at every bus, and only the slack bus angle is fixed.
 
 Monitored limits: |V|² at PQ buses, generator P (slack, or every
-participating generator) and Q (every generator bus), branch-flow polygon
-faces at both ends, angle differences.  Uncertain injections enter the
+participating generator) and Q (every generator bus), branch P and Q at both
+ends of rated branches, angle differences.  Branch apparent power is limited
+by derived rows: the faces cos φ_k P + sin φ_k Q ≤ rate·cos(π/N) of an
+inscribed regular N-gon (inside the polygon implies inside the circle, so the
+representation is inner; N = ``flow_faces``, default 32: 0.5 % of the rating
+in the worst direction).  Uncertain injections enter the
 equations (E) where the bus has that equation, and the generator limits of
 their bus (A) where they change what the generators there must produce.
 """
@@ -24,8 +28,8 @@ import scipy.sparse as sp
 
 from ..errors import NetworkError
 from ..quadratic import QuadraticMap, QuadraticSystem, UncertainSet
-from .forms import angle_forms, flow_polygon_forms, injection_forms, voltage_forms
-from .network import BUS_I, PD, PMAX, PMIN, QD, QMAX, QMIN, VMAX, VMIN, Network
+from .forms import angle_forms, branch_flow_forms, injection_forms, voltage_forms
+from .network import BUS_I, PD, QD, RATE_A, VMAX, VMIN, Network
 
 Policy = Literal["slack", "distributed"]
 
@@ -91,7 +95,7 @@ def _per_bus_sum(net: Network, values: np.ndarray) -> np.ndarray:
 
 
 def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injection], policy: Policy = "slack",
-                 participation: np.ndarray | None = None, flow_faces: int = 24) -> NetworkSystem:
+                 participation: np.ndarray | None = None, flow_faces: int = 32) -> NetworkSystem:
     """Build the :class:`NetworkSystem` for ``injections`` around the operating point ``op``."""
     n = net.n_bus
     s, pv, pq = net.bus_kinds()
@@ -141,12 +145,16 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     maps = [vol.take(pq), inj.take(p_lim_bus), inj.take(n + gen_bus)]
     lower = [net.bus[pq, VMIN] ** 2, pmin_b[p_lim_bus] - load.real[p_lim_bus], qmin_b[gen_bus] - load.imag[gen_bus]]
     upper = [net.bus[pq, VMAX] ** 2, pmax_b[p_lim_bus] - load.real[p_lim_bus], qmax_b[gen_bus] - load.imag[gen_bus]]
-    poly, poly_up = flow_polygon_forms(net, flow_faces)
+    flows = branch_flow_forms(net)
+    rated = np.flatnonzero(net.branch[net.branch_on, RATE_A] > 0)
+    flow_rows = (4 * rated[:, None] + np.arange(4)[None, :]).reshape(-1)
     ang = angle_forms(net)
-    maps += [poly, ang]
-    lower += [np.full(poly.n_rows, -np.inf), np.full(ang.n_rows, -np.inf)]
-    upper += [poly_up, np.zeros(ang.n_rows)]
+    maps += [flows.take(flow_rows), ang]
+    lower += [np.full(len(flow_rows), -np.inf), np.full(ang.n_rows, -np.inf)]
+    upper += [np.full(len(flow_rows), np.inf), np.zeros(ang.n_rows)]
     lim_full = QuadraticMap.stack(maps)
+    first_flow = sum(len(x) for x in lower[:3])
+    derived, derived_up, derived_names = _flow_polygon(net, rated, first_flow, lim_full.n_rows, flow_faces)
     names = list(lim_full.names)
     n_v, n_p = len(pq), len(p_lim_bus)
     for k, b in enumerate(p_lim_bus):
@@ -194,8 +202,40 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     if dist:
         var_names.append("alpha")
     point = np.concatenate([x_full[free], [0.0]]) if dist else x_full[free]
-    system = QuadraticSystem(eq_map, target, lim_map, np.concatenate(lower), np.concatenate(upper), unc, tuple(var_names))
+    # a common rotation of all voltages leaves every row unchanged: e → −f, f → e
+    half = n - 1
+    rot = sp.csr_matrix((np.concatenate([-np.ones(half), np.ones(half)]),
+                         (np.arange(n_state), np.concatenate([np.arange(half, n_state), np.arange(half)]))),
+                        shape=(n_vars, n_vars))
+    system = QuadraticSystem(eq_map, target, lim_map, np.concatenate(lower), np.concatenate(upper), unc, tuple(var_names),
+                             derived, derived_up, derived_names, rot)
     return NetworkSystem(system, point, net, op, tuple(injections), policy, part, s, pv, pq, flow_faces)
+
+
+def _flow_polygon(net: Network, rated: np.ndarray, first: int, n_rows: int, faces: int
+                  ) -> tuple[sp.csr_matrix, np.ndarray, tuple[str, ...]]:
+    """Faces of the inscribed regular polygon of every rated branch end, on the P/Q limit rows.
+
+    Rows ``first + 4k + (0, 1, 2, 3)`` hold Pf, Qf, Pt, Qt of the k-th rated branch.
+    """
+    if faces < 4:
+        raise NetworkError(f"flow_faces must be at least 4, got {faces}")
+    phis = 2.0 * np.pi * np.arange(faces) / faces
+    n_ends = 2 * len(rated)
+    out = np.arange(n_ends * faces)
+    end = out // faces
+    p_row = first + 2 * end  # Pf/Pt row of that end; Q is the next row
+    w = sp.csr_matrix((np.concatenate([np.cos(phis)[out % faces], np.sin(phis)[out % faces]]),
+                       (np.concatenate([out, out]), np.concatenate([p_row, p_row + 1]))), shape=(len(out), n_rows))
+    rate = net.branch[net.branch_on[rated], RATE_A] / net.base_mva
+    upper = np.repeat(np.repeat(rate, 2), faces) * np.cos(np.pi / faces)
+    names = []
+    for k in rated:
+        r = int(net.branch_on[k])
+        tag = f"{int(net.branch[r, 0])}-{int(net.branch[r, 1])}#{r + 1}"
+        for side in "ft":
+            names += [f"S{side}[{tag}]@{np.degrees(phi):.0f}deg" for phi in phis]
+    return w, upper, tuple(names)
 
 
 def load_injections(net: Network, band: float) -> list[Injection]:
