@@ -53,7 +53,7 @@ class CertifyOptions:
     max_fraction: float = 1.0
     inflation: float = 1e-3
     max_iterations: int = 400
-    precision: float = 1e-4
+    precision: float = 1e-3
     residual_tolerance: float = 1e-6
     condition_limit: float = 1e12
 
@@ -368,13 +368,16 @@ def _uniform(eng: _Conditions, opts: CertifyOptions, wl: np.ndarray, wu: np.ndar
                                f"{why.worst_margin:.3g}); the residual or Jacobian at the operating point leaves "
                                "no self-mapping region, or that limit has no room")
     best_t, best_omega = 0.0, omega0
-    hi = opts.max_fraction
+    # the limits alone, linearised (remainders at ω0 only), bound t from above: bracket there
+    hi = min(opts.max_fraction, _max_t_at(eng, omega0, wl, wu, limits_only=True) * (1 + 1e-9))
+    if hi <= 0:
+        return 0.0, omega0
     om = it(hi, best_omega)
     if om is not None:
         return hi, om
-    lo = 0.0
-    while hi - lo > opts.precision * max(hi, 1e-12):
-        mid = 0.5 * (lo + hi)
+    lo = hi * 1e-9
+    while hi > lo * (1 + opts.precision):
+        mid = np.sqrt(lo * hi)  # geometric bisection: the answer may be orders of magnitude below hi
         om = it(mid, best_omega)
         if om is None:
             hi = mid
@@ -387,8 +390,9 @@ def _uniform(eng: _Conditions, opts: CertifyOptions, wl: np.ndarray, wu: np.ndar
     return best_t, best_omega
 
 
-def _max_t_at(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarray) -> float:
-    """Largest t for which [−t wl, t wu] satisfies every condition at this fixed ω (floating point)."""
+def _max_t_at(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarray, limits_only: bool = False) -> float:
+    """Largest t for which [−t wl, t wu] satisfies every condition at this fixed ω (floating point);
+    with ``limits_only`` the self-mapping rows are left out."""
     terms = eng.region_terms(omega)
     s_up, s_lo, c_up, c_lo = eng.injection_terms(-wl, wu)
     up, lo = eng.stack(terms["lim_up"], terms["lim_lo"])
@@ -396,7 +400,10 @@ def _max_t_at(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarra
     slack = np.concatenate([omega - np.maximum(terms["a_up"], 0), omega - np.maximum(terms["a_lo"], 0),
                             eng.row_upper - up, lo[:n_mon] - eng.row_lower[:n_mon]])
     coef = np.concatenate([s_up, s_lo, eng.stack_coefficients(c_up, c_lo), c_lo])
-    with np.errstate(invalid="ignore", divide="ignore"):
+    if limits_only:
+        m = len(s_up)
+        slack, coef = slack[2 * m:], coef[2 * m:]
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
         if np.any(slack < 0):
             return -1.0
         ratio = np.where(coef > 0, slack / coef, np.inf)
@@ -416,7 +423,7 @@ def _scan_scale(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndar
     x1, x2 = b - g * (b - a), a + g * (b - a)
     f1, f2 = f(x1), f(x2)
     f(1.0)
-    for _ in range(25):
+    for _ in range(14):
         if f1 >= f2:
             b, x2, f2 = x2, x1, f1
             x1 = b - g * (b - a)

@@ -91,6 +91,8 @@ def sample_points(lower: np.ndarray, upper: np.ndarray, samples: int, max_vertic
     uniform random interior points; returns (points, number of vertices among them)."""
     rng = np.random.default_rng(seed)
     s = len(lower)
+    if s == 0:
+        return np.zeros((1, 0)), 1
     if s <= max_vertices:
         corners = np.array(list(itertools.product((0, 1), repeat=s)), dtype=float).reshape(-1, s)
     else:
@@ -102,12 +104,22 @@ def sample_points(lower: np.ndarray, upper: np.ndarray, samples: int, max_vertic
 
 def evaluate_points(net: Network, op: OperatingPoint, injections: Sequence[Injection], points: np.ndarray,
                     policy: str = "slack", participation: np.ndarray | None = None, tol: float = 1e-9,
-                    progress=None) -> list[dict[str, tuple[float, str]] | None]:
+                    progress=None, client=None) -> list[dict[str, tuple[float, str]] | None]:
     """Power flow and limit margins at each point (rows: injection deviations, per unit).
 
     Returns per point the worst margin per limit class, or None where the
-    power flow did not converge.
+    power flow did not converge.  With a Dask ``client`` the points are fanned
+    out over its workers in chunks.
     """
+    if client is not None and len(points) > 1:
+        chunks = np.array_split(np.atleast_2d(points), min(len(points), 4 * max(len(client.ncores()), 1)))
+        futures = client.map(evaluate_points, [net] * len(chunks), [op] * len(chunks), [list(injections)] * len(chunks),
+                             chunks, [policy] * len(chunks), [participation] * len(chunks), [tol] * len(chunks),
+                             pure=False)
+        out = []
+        for part in client.gather(futures):
+            out.extend(part)
+        return out
     ybus = net.admittance()[0]
     s, pv, pq = net.bus_kinds()
     index = net.bus_index
@@ -146,14 +158,19 @@ VIOLATION_TOL = 1e-7  # numerical noise of a converged power flow (common practi
 def validate_box(net: Network, op: OperatingPoint, injections: Sequence[Injection], lower_pu: np.ndarray,
                  upper_pu: np.ndarray, policy: str = "slack", participation: np.ndarray | None = None,
                  samples: int = 300, max_vertices: int = 10, seed: int = 0, tol: float = 1e-9,
-                 progress=None) -> ValidationReport:
+                 progress=None, client=None, extra_points: np.ndarray | None = None) -> ValidationReport:
     """Sample the box [lower_pu, upper_pu] of injection deviations and check every limit.
 
     All vertices when there are ≤ ``max_vertices`` uncertain injections (else
-    ``samples`` random vertices), plus ``samples`` random interior points.
+    ``samples`` random vertices), plus ``samples`` random interior points, plus
+    any ``extra_points`` (counted as vertices; e.g. vertices chosen as worst
+    for linearised limits).
     """
     points, n_vert = sample_points(np.asarray(lower_pu, float), np.asarray(upper_pu, float), samples, max_vertices, seed)
-    results = evaluate_points(net, op, injections, points, policy, participation, tol, progress)
+    if extra_points is not None and len(extra_points):
+        points = np.vstack([np.asarray(extra_points, dtype=float), points])
+        n_vert += len(extra_points)
+    results = evaluate_points(net, op, injections, points, policy, participation, tol, progress, client)
     report = ValidationReport(len(points), n_vert, 0, 0)
     worst: dict[str, float] = {}
     for k, margins in enumerate(results):
