@@ -175,7 +175,7 @@ def run_case(name: str, pub: dict, client, samples: int, steps: int) -> list[dic
             records.append({"case": name, "buses": net.n_bus, "scenario": scen, "error": "no uncertain injection"})
             continue
         rec = {"case": name, "buses": net.n_bus, "scenario": scen, "uncertain": len(inj), "margin": opf.margin,
-               "opf_cost": opf.objective_per_h, "published_ac": ref,
+               "opf_cost": opf.objective_per_h, "published_ac": ref, "plain_opf_cost": plain.objective_per_h,
                "cost_increase_pct": 100 * (opf.objective_per_h - ref) / ref, "opf_time_s": opf_time}
         ns = build_system(net, op, inj)
         wl, wu = ns.system.uncertain.band_lower, ns.system.uncertain.band_upper

@@ -17,7 +17,7 @@ from .certify import Certificate, CertifyOptions, Objective, certify
 from .errors import NetworkError, OperatingPointError
 from .grid.casefile import read_case
 from .grid.model import OPFResult, solve_opf
-from .grid.network import BUS_I, GEN_BUS, PG, QG, VG, Network
+from .grid.network import BUS_I, GEN_BUS, PG, VG, Network
 from .grid.powerflow import newton_power_flow
 from .grid.system import (Injection, NetworkSystem, OperatingPoint, build_system, largest_load_pq_buses,
                           load_injections, site_injections)

@@ -41,48 +41,57 @@ class ValidationReport:
         return self.violations == 0 and self.not_converged == 0
 
 
-def _limit_margins(net: Network, v: np.ndarray, sg_bus: np.ndarray, check_p: np.ndarray) -> dict[str, tuple[float, str]]:
-    """Worst margin and the element that has it, per limit class, at one solved state."""
-    base = net.base_mva
-    out: dict[str, tuple[float, str]] = {}
-    vm = np.abs(v)
-    mv = np.minimum(net.bus[:, VMAX] - vm, vm - net.bus[:, VMIN])
-    i = int(np.argmin(mv))
-    out["voltage_pu"] = (float(mv[i]), f"bus {int(net.bus[i, BUS_I])} |V| = {vm[i]:.5f} pu")
-    lim = net.gen_limits_pu()
-    gb = net.gen_bus_idx()
-    agg = {}
-    for key in lim:
-        arr = np.zeros(net.n_bus)
-        np.add.at(arr, gb, lim[key])
-        agg[key] = arr
-    buses = np.unique(gb)
-    mq = np.minimum(agg["qmax"][buses] - sg_bus.imag[buses], sg_bus.imag[buses] - agg["qmin"][buses]) * base
-    i = int(np.argmin(mq))
-    out["gen_q_mvar"] = (float(mq[i]), f"bus {int(net.bus[buses[i], BUS_I])} Qgen = {sg_bus.imag[buses[i]] * base:.3f} Mvar")
-    pb = np.flatnonzero(check_p)
-    if len(pb):
-        mp = np.minimum(agg["pmax"][pb] - sg_bus.real[pb], sg_bus.real[pb] - agg["pmin"][pb]) * base
-        i = int(np.argmin(mp))
-        out["gen_p_mw"] = (float(mp[i]), f"bus {int(net.bus[pb[i], BUS_I])} Pgen = {sg_bus.real[pb[i]] * base:.3f} MW")
-    _, yf, yt = net.admittance()
-    f, t = net.branch_ends()
-    br = net.branch[net.branch_on]
-    rate = br[:, RATE_A]
-    rated = rate > 0
-    if np.any(rated):
-        sf, st = np.abs(v[f] * np.conj(yf @ v)) * base, np.abs(v[t] * np.conj(yt @ v)) * base
-        ms = (rate - np.maximum(sf, st))[rated]
-        i = int(np.argmin(ms))
-        k = np.flatnonzero(rated)[i]
-        out["flow_mva"] = (float(ms[i]), f"branch {int(br[k, 0])}-{int(br[k, 1])} |S| = {max(sf[k], st[k]):.3f} MVA "
-                                         f"(rating {rate[k]:.1f})")
-    dth = np.degrees(np.angle(v[f] * np.conj(v[t])))
-    ma = np.minimum(br[:, ANGMAX] - dth, dth - br[:, ANGMIN])
-    if len(ma):
-        i = int(np.argmin(ma))
-        out["angle_deg"] = (float(ma[i]), f"branch {int(br[i, 0])}-{int(br[i, 1])} angle difference {dth[i]:.3f} deg")
-    return out
+class _Limits:
+    """The network data the limit checks need, computed once per network."""
+
+    def __init__(self, net: Network, check_p: np.ndarray) -> None:
+        self.net, self.base = net, net.base_mva
+        lim = net.gen_limits_pu()
+        gb = net.gen_bus_idx()
+        self.agg = {}
+        for key in lim:
+            arr = np.zeros(net.n_bus)
+            np.add.at(arr, gb, lim[key])
+            self.agg[key] = arr
+        self.gen_buses = np.unique(gb)
+        self.p_buses = np.flatnonzero(check_p)
+        _, self.yf, self.yt = net.admittance()
+        self.f, self.t = net.branch_ends()
+        self.br = net.branch[net.branch_on]
+        self.rated = self.br[:, RATE_A] > 0
+
+    def margins(self, v: np.ndarray, sg_bus: np.ndarray) -> dict[str, tuple[float, str]]:
+        """Worst margin and the element that has it, per limit class, at one solved state."""
+        net, base, agg, br = self.net, self.base, self.agg, self.br
+        out: dict[str, tuple[float, str]] = {}
+        vm = np.abs(v)
+        mv = np.minimum(net.bus[:, VMAX] - vm, vm - net.bus[:, VMIN])
+        i = int(np.argmin(mv))
+        out["voltage_pu"] = (float(mv[i]), f"bus {int(net.bus[i, BUS_I])} |V| = {vm[i]:.5f} pu")
+        buses = self.gen_buses
+        mq = np.minimum(agg["qmax"][buses] - sg_bus.imag[buses], sg_bus.imag[buses] - agg["qmin"][buses]) * base
+        i = int(np.argmin(mq))
+        out["gen_q_mvar"] = (float(mq[i]), f"bus {int(net.bus[buses[i], BUS_I])} Qgen = {sg_bus.imag[buses[i]] * base:.3f} Mvar")
+        pb = self.p_buses
+        if len(pb):
+            mp = np.minimum(agg["pmax"][pb] - sg_bus.real[pb], sg_bus.real[pb] - agg["pmin"][pb]) * base
+            i = int(np.argmin(mp))
+            out["gen_p_mw"] = (float(mp[i]), f"bus {int(net.bus[pb[i], BUS_I])} Pgen = {sg_bus.real[pb[i]] * base:.3f} MW")
+        f, t, rate = self.f, self.t, br[:, RATE_A]
+        if np.any(self.rated):
+            sf = np.abs(v[f] * np.conj(self.yf @ v)) * base
+            st = np.abs(v[t] * np.conj(self.yt @ v)) * base
+            ms = (rate - np.maximum(sf, st))[self.rated]
+            i = int(np.argmin(ms))
+            k = np.flatnonzero(self.rated)[i]
+            out["flow_mva"] = (float(ms[i]), f"branch {int(br[k, 0])}-{int(br[k, 1])} |S| = {max(sf[k], st[k]):.3f} MVA "
+                                             f"(rating {rate[k]:.1f})")
+        dth = np.degrees(np.angle(v[f] * np.conj(v[t])))
+        ma = np.minimum(br[:, ANGMAX] - dth, dth - br[:, ANGMIN])
+        if len(ma):
+            i = int(np.argmin(ma))
+            out["angle_deg"] = (float(ma[i]), f"branch {int(br[i, 0])}-{int(br[i, 1])} angle difference {dth[i]:.3f} deg")
+        return out
 
 
 def sample_points(lower: np.ndarray, upper: np.ndarray, samples: int, max_vertices: int = 10,
@@ -137,6 +146,7 @@ def evaluate_points(net: Network, op: OperatingPoint, injections: Sequence[Injec
         check_p[s] = True
     rows = np.array([index[i.bus] for i in injections], dtype=np.int64)
     is_q = np.array([i.quantity == "q" for i in injections], dtype=bool)
+    limits = _Limits(net, check_p)
     out: list[dict[str, tuple[float, str]] | None] = []
     for k, p in enumerate(np.atleast_2d(points)):
         delta = np.zeros(net.n_bus, dtype=complex)
@@ -148,7 +158,7 @@ def evaluate_points(net: Network, op: OperatingPoint, injections: Sequence[Injec
             out.append(None)
             continue
         s_calc = res.voltage * np.conj(ybus @ res.voltage)
-        out.append(_limit_margins(net, res.voltage, s_calc + sd0 - delta, check_p))
+        out.append(limits.margins(res.voltage, s_calc + sd0 - delta))
     return out
 
 

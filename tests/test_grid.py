@@ -1,4 +1,7 @@
-"""Network data, admittances, power flow and the case-file reader against references."""
+"""Network data, admittances, power flow and the case-file reader against references.
+
+Tolerances: 1e-8 as the acceptance asks (agreement with the reference library to 1e-8).
+"""
 from __future__ import annotations
 
 import numpy as np

@@ -1,7 +1,6 @@
 """Certified boxes on benchmark networks survive independent sampling validation."""
 from __future__ import annotations
 
-import numpy as np
 import pytest
 
 from conftest import pglib_case

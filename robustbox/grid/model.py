@@ -21,7 +21,7 @@ from ..errors import NetworkError, SolverError
 from ..quadratic import QuadraticMap
 from ..solve import SolveResult, solve_model
 from .forms import angle_forms, branch_flow_forms, injection_forms
-from .network import ANGMAX, ANGMIN, PD, PG, QD, RATE_A, VA, VM, VMAX, VMIN, Network
+from .network import ANGMAX, ANGMIN, PD, QD, RATE_A, VA, VM, VMAX, VMIN, Network
 from .system import OperatingPoint
 
 

@@ -125,7 +125,7 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     bus_part = _per_bus_sum(net, part)
     inj = injection_forms(net)
     load = net.load_pu()
-    pg_bus, qg_bus = _per_bus_sum(net, op.pg_pu), _per_bus_sum(net, op.qg_pu)
+    pg_bus = _per_bus_sum(net, op.pg_pu)
     n_vars = n_state + (1 if dist else 0)
     p_buses = np.arange(n) if dist else np.setdiff1d(np.arange(n), [s])
     eq_rows = np.concatenate([p_buses, n + pq])
