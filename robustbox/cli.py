@@ -84,7 +84,8 @@ def _cmd_certify(args: argparse.Namespace) -> int:
         print(f"wrote {args.out}")
     if args.report:
         from .report import write_report
-        print(f"wrote {write_report(res, args.report)}")
+        pair = tuple(x.strip() for x in args.slice.split(",")) if args.slice else None
+        print(f"wrote {write_report(res, args.report, pair=pair)}")
     return EXIT_OK
 
 
@@ -158,6 +159,7 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--max-fraction", type=float, default=1.0, help="look beyond the band up to this fraction")
     c.add_argument("--out", help="write the result JSON here")
     c.add_argument("--report", help="write figures and report.html into this folder")
+    c.add_argument("--slice", help="two injections for the report's 2-D slice, e.g. p[9],p[17] (default: first two)")
     c.set_defaults(func=_cmd_certify)
     k = sub.add_parser("check", help="independently validate a saved box by sampling power flows")
     k.add_argument("case")

@@ -12,6 +12,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import networkx as nx  # noqa: E402
 import numpy as np  # noqa: E402
 
+from .errors import NetworkError  # noqa: E402
 from .grid.network import BUS_I, VMAX, VMIN  # noqa: E402
 from .study import CAUTION, CaseCertificate, result_to_json  # noqa: E402
 from .validate import ValidationReport, evaluate_points  # noqa: E402
@@ -90,14 +91,27 @@ def network_figure(res: CaseCertificate, path: Path) -> Path:
     return path
 
 
-def write_report(res: CaseCertificate, folder: str | Path, validation: ValidationReport | None = None) -> Path:
-    """Write PNG figures and ``report.html`` (figures embedded) into ``folder``; returns the HTML path."""
+def write_report(res: CaseCertificate, folder: str | Path, validation: ValidationReport | None = None,
+                 pair: tuple[str, str] | None = None) -> Path:
+    """Write PNG figures and ``report.html`` (figures embedded) into ``folder``; returns the HTML path.
+
+    ``pair`` names the two injections of the 2-D slice (e.g. ("p[9]", "p[17]"); default: the first two).
+    """
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     data = result_to_json(res)
     figs = [envelope_figure(data, folder / "envelope.png"), network_figure(res, folder / "network.png")]
-    if len(res.nsys.injections) >= 2:
-        figs.insert(1, slice_figure(res, folder / "slice.png"))
+    names = [inj.name for inj in res.nsys.injections]
+    if pair is not None:
+        missing = [p for p in pair if p not in names]
+        if missing or len(pair) != 2 or pair[0] == pair[1]:
+            raise NetworkError(f"slice: need two different uncertain injections among {', '.join(names[:12])}"
+                               f"{' ...' if len(names) > 12 else ''}; got {', '.join(pair)}")
+        idx = (names.index(pair[0]), names.index(pair[1]))
+    else:
+        idx = (0, 1)
+    if len(names) >= 2:
+        figs.insert(1, slice_figure(res, folder / "slice.png", idx))
     rows = "".join(f"<tr><td>{e['bus']}</td><td>{e['quantity'].upper()}</td><td>{e['nominal']:.2f}</td>"
                    f"<td>{e['lower']:.2f}</td><td>{e['upper']:.2f}</td><td>{e['unit']}</td></tr>" for e in data["box"])
     imgs = "".join(f'<p><img alt="{p.stem}" src="data:image/png;base64,{base64.b64encode(p.read_bytes()).decode()}"/></p>'

@@ -72,3 +72,12 @@ def test_cli_errors_are_one_line(tmp_path, capsys, args, message):
     err = capsys.readouterr().err.strip()
     assert code in (2, 3)
     assert message in err and "Traceback" not in err and len(err.splitlines()) == 1
+
+
+def test_report_slice_for_chosen_injections(tmp_path):
+    out = tmp_path / "rep"
+    assert main(["certify", str(demo_case_path()), "--uncertain", "renewables", "--band", "0.5",
+                 "--report", str(out), "--slice", "p[24],p[9]"]) == 0
+    assert (out / "slice.png").stat().st_size > 5000
+    assert main(["certify", str(demo_case_path()), "--uncertain", "renewables", "--report", str(out),
+                 "--slice", "p[24],p[999]"]) == 2

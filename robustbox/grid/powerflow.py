@@ -30,9 +30,14 @@ class PowerFlowResult:
     alpha_pu: float
 
 
-def _ds_dv(ybus: sp.csr_matrix, v: np.ndarray) -> tuple[sp.csr_matrix, sp.csr_matrix]:
-    """Partial derivatives of bus injections S(V) w.r.t. angle and magnitude."""
+def _ds_dv(ybus, v: np.ndarray):
+    """Partial derivatives of bus injections S(V) w.r.t. angle and magnitude (dense or sparse like ybus)."""
     i_bus = ybus @ v
+    if not sp.issparse(ybus):
+        vn = v / np.abs(v)
+        ds_dvm = v[:, None] * np.conj(ybus * vn[None, :]) + np.diag(np.conj(i_bus) * vn)
+        ds_dva = 1j * (np.diag(v * np.conj(i_bus)) - v[:, None] * np.conj(ybus * v[None, :]))
+        return ds_dva, ds_dvm
     dv = sp.diags(v)
     dvn = sp.diags(v / np.abs(v))
     di = sp.diags(i_bus)
@@ -41,10 +46,18 @@ def _ds_dv(ybus: sp.csr_matrix, v: np.ndarray) -> tuple[sp.csr_matrix, sp.csr_ma
     return sp.csr_matrix(ds_dva), sp.csr_matrix(ds_dvm)
 
 
+DENSE_BELOW = 150  # buses: below this a dense Jacobian is faster (common practice, no source)
+
+
 def newton_power_flow(ybus: sp.csr_matrix, s_sched: np.ndarray, v0: np.ndarray, slack: int, pv: np.ndarray,
                       pq: np.ndarray, participation: np.ndarray | None = None, tol: float = 1e-10,
                       max_iter: int = 30) -> PowerFlowResult:
-    """Solve S(V) = s_sched (+ α·participation on P) with |V| held at PV and slack buses."""
+    """Solve S(V) = s_sched (+ α·participation on P) with |V| held at PV and slack buses.
+
+    Stops early when the mismatch grows past 1e6 pu (divergence).
+    """
+    dense = ybus.shape[0] < DENSE_BELOW
+    y = ybus.toarray() if dense else ybus
     v = np.asarray(v0, dtype=complex).copy()
     va, vm = np.angle(v), np.abs(v)
     dist = participation is not None
@@ -53,7 +66,7 @@ def newton_power_flow(ybus: sp.csr_matrix, s_sched: np.ndarray, v0: np.ndarray, 
     alpha = 0.0
 
     def mismatch() -> np.ndarray:
-        s = v * np.conj(ybus @ v) - s_sched
+        s = v * np.conj(y @ v) - s_sched
         p = s.real[p_idx] - (alpha * participation[p_idx] if dist else 0.0)
         return np.concatenate([p, s.imag[pq]])
 
@@ -61,17 +74,27 @@ def newton_power_flow(ybus: sp.csr_matrix, s_sched: np.ndarray, v0: np.ndarray, 
     it = 0
     while np.max(np.abs(f), initial=0.0) > tol and it < max_iter:
         it += 1
-        dva, dvm = _ds_dv(ybus, v)
-        blocks = [[dva[p_idx][:, ang_idx].real, dvm[p_idx][:, pq].real],
-                  [dva[pq][:, ang_idx].imag, dvm[pq][:, pq].imag]]
-        jac = sp.bmat(blocks, format="csc")
-        if dist:
-            col = sp.csc_matrix(np.concatenate([-participation[p_idx], np.zeros(len(pq))])[:, None])
-            jac = sp.hstack([jac, col], format="csc")
-        try:
-            dx = spla.spsolve(jac, -f)
-        except RuntimeError:
-            break
+        dva, dvm = _ds_dv(y, v)
+        if dense:
+            jac = np.block([[dva[np.ix_(p_idx, ang_idx)].real, dvm[np.ix_(p_idx, pq)].real],
+                            [dva[np.ix_(pq, ang_idx)].imag, dvm[np.ix_(pq, pq)].imag]])
+            if dist:
+                jac = np.hstack([jac, np.concatenate([-participation[p_idx], np.zeros(len(pq))])[:, None]])
+            try:
+                dx = np.linalg.solve(jac, -f)
+            except np.linalg.LinAlgError:
+                break
+        else:
+            blocks = [[dva[p_idx][:, ang_idx].real, dvm[p_idx][:, pq].real],
+                      [dva[pq][:, ang_idx].imag, dvm[pq][:, pq].imag]]
+            jac = sp.bmat(blocks, format="csc")
+            if dist:
+                col = sp.csc_matrix(np.concatenate([-participation[p_idx], np.zeros(len(pq))])[:, None])
+                jac = sp.hstack([jac, col], format="csc")
+            try:
+                dx = spla.spsolve(jac, -f)
+            except RuntimeError:
+                break
         if not np.all(np.isfinite(dx)):
             break
         na = len(ang_idx)
@@ -81,7 +104,9 @@ def newton_power_flow(ybus: sp.csr_matrix, s_sched: np.ndarray, v0: np.ndarray, 
             alpha += dx[-1]
         v = vm * np.exp(1j * va)
         f = mismatch()
-    err = float(np.max(np.abs(f), initial=0.0))
+        if not np.all(np.isfinite(f)) or np.max(np.abs(f)) > 1e6:
+            break
+    err = float(np.max(np.abs(f), initial=0.0)) if np.all(np.isfinite(f)) else float("inf")
     return PowerFlowResult(v, bool(err <= tol), it, err, alpha)
 
 
