@@ -31,7 +31,7 @@ from .errors import CertificateError, OperatingPointError
 from .quadratic import QuadraticSystem
 from .rounding import gamma, inflate, matvec_upper, sum_error
 
-Objective = Literal["uniform", "hosting", "widths", "verify"]
+Objective = Literal["uniform", "hosting", "widths", "volume", "verify"]
 
 
 @dataclass(frozen=True)
@@ -444,8 +444,12 @@ def _scan_scale(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndar
 
 
 def _lp_box(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarray, cap: float,
-            weights: np.ndarray, lower_fixed: bool) -> tuple[np.ndarray, np.ndarray] | None:
-    """Maximise Σ weights·(u − l) at fixed ω with HiGHS; None if infeasible."""
+            weights: np.ndarray, lower_fixed: bool, volume: bool = False) -> tuple[np.ndarray, np.ndarray] | None:
+    """Maximise Σ weights·(u − l) at fixed ω with HiGHS (or the log-volume with Clarabel); None if infeasible.
+
+    The rows are the conditions of the certificate at this ω, linear in (u, −l); their right-hand sides
+    are shrunk by 1e-7 (relative) and the box is rechecked with proven bounds by the caller.
+    """
     s = len(wl)
     terms = eng.region_terms(omega)
     e_pos, e_neg = eng.e_pos.toarray(), eng.e_neg.toarray()
@@ -463,24 +467,51 @@ def _lp_box(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarray,
         return None
     active = np.any(a_ub != 0, axis=1)
     a_ub, b_ub = a_ub[active], b_ub[active] * (1 - 1e-7)
-    c_obj = -np.concatenate([weights, weights])
-    bounds = [(0, cap * w) for w in wu] + [((w, w) if lower_fixed else (0, cap * w)) for w in wl]
-    res = linprog(c_obj, A_ub=sp.csr_matrix(a_ub) if a_ub.size else None, b_ub=b_ub if a_ub.size else None,
-                  bounds=bounds, method="highs")
-    if res.status != 0:
+    lb = np.concatenate([np.zeros(s), wl if lower_fixed else np.zeros(s)])
+    ub = np.concatenate([cap * wu, wl if lower_fixed else cap * wl])
+    if volume:
+        x = _volume_box(a_ub, b_ub, lb, ub, weights)
+    else:
+        res = linprog(-np.concatenate([weights, weights]), A_ub=sp.csr_matrix(a_ub) if a_ub.size else None,
+                      b_ub=b_ub if a_ub.size else None, bounds=list(zip(lb, ub)), method="highs")
+        x = res.x if res.status == 0 else None
+    if x is None:
         return None
-    x = np.maximum(res.x, 0.0)
+    x = np.clip(x, lb, ub)
     return -x[s:], x[:s]
 
 
+def _volume_box(a_ub: np.ndarray, b_ub: np.ndarray, lb: np.ndarray, ub: np.ndarray,
+                weights: np.ndarray) -> np.ndarray | None:
+    """Maximise Σ_k [w_k > 0] log(u_k + ln_k) (the box's log-volume) under the same rows: a conic program."""
+    import cvxpy as cp
+
+    s = len(weights)
+    x = cp.Variable(2 * s)
+    keep = np.flatnonzero(weights > 0)
+    width = x[:s][keep] + x[s:][keep]
+    cons = [x >= lb, x <= ub]
+    if a_ub.size:
+        cons.append(a_ub @ x <= b_ub)
+    prob = cp.Problem(cp.Maximize(cp.sum(cp.log(width))), cons)
+    try:
+        prob.solve(solver=cp.CLARABEL)
+    except cp.error.SolverError:
+        return None
+    if prob.status not in ("optimal", "optimal_inaccurate") or x.value is None:
+        return None
+    return np.asarray(x.value, dtype=float)
+
+
 def _lp_search(eng: _Conditions, opts: CertifyOptions, wl: np.ndarray, wu: np.ndarray, weights: np.ndarray,
-               lower_fixed: bool, omega_start: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+               lower_fixed: bool, omega_start: np.ndarray, volume: bool = False
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Alternate LP at fixed ω and the least ω for the LP's box; keep the best proven box."""
     best: tuple[float, np.ndarray, np.ndarray, np.ndarray] | None = None
     for tau in (1.0, 1.5, 2.5):
         omega = tau * omega_start
         for _ in range(4):
-            box = _lp_box(eng, omega, wl, wu, opts.max_fraction, weights, lower_fixed)
+            box = _lp_box(eng, omega, wl, wu, opts.max_fraction, weights, lower_fixed, volume)
             if box is None:
                 break
             lower, upper = box
@@ -490,8 +521,9 @@ def _lp_search(eng: _Conditions, opts: CertifyOptions, wl: np.ndarray, wu: np.nd
                 lower, upper = lower * (1 - 1e-6), upper * (1 - 1e-6)
             else:
                 break
-            value = float(weights @ (upper - lower))
-            if best is None or value > best[0] * (1 + 1e-9):
+            value = (float(np.sum(np.log(np.maximum(upper - lower, 1e-300)[weights > 0]))) if volume
+                     else float(weights @ (upper - lower)))
+            if best is None or value > best[0] + 1e-9 * abs(best[0]):
                 best = (value, lower, upper, omega)
             found, tighter = eng.least_omega(lower, upper, opts.inflation, opts.max_iterations)
             if not found or np.allclose(tighter, omega):
@@ -513,6 +545,7 @@ def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "
       "uniform"  largest fraction t ≤ max_fraction of the requested band;
       "hosting"  lower ends fixed at the band's lower end, maximise Σ weights·upper (LP);
       "widths"   maximise Σ weights·(upper − lower) inside max_fraction × band (LP);
+      "volume"   maximise the box's log-volume Σ log(upper − lower) inside max_fraction × band (conic, cvxpy);
       "verify"   check the given ``box = (lower, upper)``; status "certified" or "rejected".
     Raises OperatingPointError when the point does not solve the equations or
     violates a limit (the box is then empty), CertificateError when no
@@ -556,13 +589,14 @@ def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "
     elif objective == "uniform":
         t, omega = _uniform(eng, options, wl, wu)
         lower, upper = -t * wl, t * wu
-    elif objective in ("hosting", "widths"):
+    elif objective in ("hosting", "widths", "volume"):
         t, omega_u = _uniform(eng, options, wl, wu)
-        lower, upper, omega = _lp_search(eng, options, wl, wu, weights, objective == "hosting", omega_u)
+        lower, upper, omega = _lp_search(eng, options, wl, wu, weights, objective == "hosting", omega_u,
+                                         objective == "volume")
         if objective == "widths" and weights @ (upper - lower) < weights @ (t * (wu + wl)):
             lower, upper, omega = -t * wl, t * wu, omega_u
     else:
-        raise CertificateError(f"unknown objective '{objective}' (uniform, hosting, widths, verify)")
+        raise CertificateError(f"unknown objective '{objective}' (uniform, hosting, widths, volume, verify)")
     t2 = time.perf_counter()
     check = eng.check(lower, upper, omega)
     t3 = time.perf_counter()

@@ -152,7 +152,8 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--uncertain", type=_uncertain, default="loads",
                    help="loads | renewables | comma-separated bus numbers (sites injecting 0..band×100 MW)")
     c.add_argument("--band", type=float, default=0.05, help="requested band (fraction; default 0.05)")
-    c.add_argument("--objective", choices=["uniform", "hosting", "widths"], default="uniform")
+    c.add_argument("--objective", choices=["uniform", "hosting", "widths", "volume"], default="uniform",
+                   help="uniform fraction of the band | hosting (upper ends, lower fixed) | widths | volume")
     c.add_argument("--margin", type=float, default=0.1, help="limit margin of the operating-point OPF (default 0.1)")
     c.add_argument("--point", help="operating point JSON (from 'robustbox opf') instead of the margin OPF")
     c.add_argument("--policy", choices=["slack", "distributed"], default="slack", help="recourse policy")

@@ -90,8 +90,8 @@ class InjectionBox(Transformation):
     CONFIG.declare("recourse", ConfigValue(
         default=None, description="Recourse variables (default: all unfixed variables in active equalities)"))
     CONFIG.declare("objective", ConfigValue(
-        default="uniform", domain=In(["uniform", "hosting", "widths"]),
-        description="What to maximise: common fraction, one-sided upper ends, or sum of widths"))
+        default="uniform", domain=In(["uniform", "hosting", "widths", "volume"]),
+        description="What to maximise: common fraction, one-sided upper ends, sum of widths or log-volume"))
     CONFIG.declare("max_fraction", ConfigValue(
         default=1.0, domain=PositiveFloat, description="Largest fraction of the band to look for"))
     CONFIG.declare("solve_first", ConfigValue(

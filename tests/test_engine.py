@@ -98,7 +98,7 @@ def _box_points(lower, upper, rng, interior=8):
 
 @settings(max_examples=240, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(seed=st.integers(0, 2**31 - 1), n=st.integers(1, 4), n_lim=st.integers(0, 3),
-       objective=st.sampled_from(["uniform", "widths", "hosting"]), extras=st.booleans())
+       objective=st.sampled_from(["uniform", "widths", "hosting", "volume"]), extras=st.booleans())
 def test_random_systems_certified_boxes_have_roots_inside_limits(seed, n, n_lim, objective, extras):
     system, z0, dense = _random_system(seed, n, n_lim, extras)
     if objective == "hosting":  # one-sided band: lower ends fixed at 0
