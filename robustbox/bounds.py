@@ -43,6 +43,14 @@ class RemainderOptions:
 
     methods: tuple[str, ...] = METHODS
     combined_max_size: int = 25_000_000
+    combined_for_limits: bool = False
+
+    def for_limits(self) -> "RemainderOptions":
+        """The options for the monitored rows: the combined bound only if ``combined_for_limits``
+        (there are many limit rows, so it costs much more there than it gains)."""
+        if self.combined_for_limits or "combined" not in self.methods or self.methods == ("combined",):
+            return self
+        return RemainderOptions(tuple(m for m in self.methods if m != "combined"), self.combined_max_size, False)
 
 
 def _aggregate(split, mask: np.ndarray, n_rows: int) -> sp.csr_matrix:

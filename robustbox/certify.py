@@ -192,7 +192,7 @@ class _Conditions:
         self.c_err = inflate(gamma(einner + 2) * (np.abs(g) @ abs(e)) + 0.0, 1) if unc.size else c
         # coefficient bounds of the injections in the limits: C⁺ + ΔC and C⁻ + ΔC
         self.c_up, self.c_dn = np.maximum(c, 0.0) + self.c_err, np.maximum(-c, 0.0) + self.c_err
-        self.lim_bound = RemainderBound(lim, k, self.abs_k, remainder, anchor)
+        self.lim_bound = RemainderBound(lim, k, self.abs_k, remainder.for_limits(), anchor)
         n_der = 0 if system.derived is None else system.derived.shape[0]
         w = system.derived if n_der else sp.csr_matrix((0, lim.n_rows))
         self.w_pos, self.w_neg = w.maximum(0).tocsr(), (-w).maximum(0).tocsr()
