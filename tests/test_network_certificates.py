@@ -35,3 +35,18 @@ def test_enlarged_box_is_caught_by_validation():
     rep = validate_box(res.network, ns.operating_point, ns.injections, res.certificate.lower * grow,
                        res.certificate.upper * grow, samples=100)
     assert not rep.passed
+
+
+def test_dask_fan_out_matches_serial_validation():
+    from dask.distributed import Client, LocalCluster
+
+    res = certify_case(pglib_case("pglib_opf_case14_ieee"), "renewables", 0.5, "uniform", 0.1,
+                       options=CertifyOptions(max_fraction=1.0))
+    ns, cert = res.nsys, res.certificate
+    serial = validate_box(res.network, ns.operating_point, ns.injections, cert.lower, cert.upper, samples=40)
+    with LocalCluster(n_workers=1, threads_per_worker=2, processes=False, dashboard_address=None) as cluster, \
+            Client(cluster) as client:
+        fanned = validate_box(res.network, ns.operating_point, ns.injections, cert.lower, cert.upper, samples=40,
+                              client=client)
+    assert fanned.points == serial.points and fanned.violations == serial.violations == 0
+    assert fanned.worst_margin == serial.worst_margin
