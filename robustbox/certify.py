@@ -52,7 +52,7 @@ class CertifyOptions:
     remainder: RemainderOptions = RemainderOptions()
     max_fraction: float = 1.0
     inflation: float = 1e-3
-    max_iterations: int = 400
+    max_iterations: int = 60
     precision: float = 1e-3
     residual_tolerance: float = 1e-6
     condition_limit: float = 1e12
@@ -321,25 +321,44 @@ class _Conditions:
         Iterates ω ← max(ω, (1 + ε) T̂(ω)) from ω = max(box reach, start); the
         sequence increases, and limits that fail on the way fail at every
         larger ω too (all bounds grow with ω), which ends the search early.
+        Every third step a geometric extrapolation of the increments is tried
+        and kept when it is itself a valid ω (then ω is valid, not least);
+        six growing increments in a row end the search as divergent.
         """
         ep_max, ep_neg, cp_max, cp_neg = self.injection_terms(lower, upper)
         omega = np.maximum(ep_max, ep_neg)
         if start is not None:
             omega = np.maximum(omega, start)
-        for _ in range(max_iter):
+        step_prev, growing = 0.0, 0
+        for k in range(max_iter):
             terms = self.region_terms(omega)
-            if stop_on_limits:
-                up, lo = self.limit_bounds(terms, cp_max, cp_neg)
-                with np.errstate(invalid="ignore"):
-                    if np.any(up > self.row_upper) or np.any(lo < self.row_lower):
-                        return False, omega
+            if stop_on_limits and self._limits_fail(terms, cp_max, cp_neg):
+                return False, omega
             that = self.bound_map(omega, ep_max, ep_neg, terms)
             if not np.all(np.isfinite(that)):
                 return False, omega
             if np.all(that <= omega):
                 return True, omega
-            omega = np.maximum(omega, (1.0 + inflation) * that)
+            new = np.maximum(omega, (1.0 + inflation) * that)
+            step = float(np.max(new - omega))
+            rate = step / step_prev if step_prev > 0 else np.inf
+            growing = growing + 1 if rate >= 1.0 else 0
+            if k > 5 and growing >= 6:
+                return False, new  # increments no longer shrink: no fixed point within reach
+            if k % 3 == 2 and rate < 0.95:
+                # geometric extrapolation of the remaining increments; accepted only if it is a valid ω
+                trial = new + (new - omega) * (1.05 * rate / (1.0 - rate))
+                t_terms = self.region_terms(trial)
+                if np.all(self.bound_map(trial, ep_max, ep_neg, t_terms) <= trial) and not (
+                        stop_on_limits and self._limits_fail(t_terms, cp_max, cp_neg)):
+                    return True, trial
+            omega, step_prev = new, step
         return False, omega
+
+    def _limits_fail(self, terms: dict[str, np.ndarray], cp_max: np.ndarray, cp_neg: np.ndarray) -> bool:
+        up, lo = self.limit_bounds(terms, cp_max, cp_neg)
+        with np.errstate(invalid="ignore"):
+            return bool(np.any(up > self.row_upper) or np.any(lo < self.row_lower))
 
 
 # ------------------------------------------------------------------- searches
