@@ -4,7 +4,9 @@ For every case (TYP and API, up to --max-buses) and two uncertainty scenarios
   A: P and Q of every load within ± t × nominal,
   B: five sites at the five largest-load PQ buses, each injecting 0 .. t × 100 MW,
 this prints side by side, in one run:
-  - the operating point: margin AC-OPF (margin ladder 0.1, 0.05, 0.02, 0.01: the first that solves),
+  - the operating point: margin AC-OPF (margin ladder 0.1, 0.05, 0.02, 0.01: the first that solves; then the
+    same ladder with untightened generator P and Q limits, for congested cases; last the plain OPF, whose
+    point sits on its limits, so that the box is empty),
     its cost increase over the published AC optimum (PGLib-OPF v23.07 BASELINE);
   - certified t, an empirical UPPER bound on the true t (bisection; Newton power flows at all vertices
     when ≤ 12 uncertain injections, else ≥ 300 random vertices plus the vertices worst for the
@@ -14,6 +16,7 @@ this prints side by side, in one run:
     linearised box shrunk by the worst-case linearisation error over the whole voltage region;
   - certificate wall time vs one plain AC-OPF solve with our Ipopt bridge, peak memory of the certificate;
   - the binding limit class.
+The recourse policy is the slack bus (--policy distributed: generators share the balance).
 Results: bench/results/conservativeness.json (one record per case and scenario); render with
 bench/render_benchmarks.py into docs/benchmarks.md.
 
@@ -111,24 +114,25 @@ def worst_vertices(c: np.ndarray, up: np.ndarray, lo: np.ndarray, wl: np.ndarray
     return np.array(verts) if verts else np.zeros((0, len(wl)))
 
 
-def feasible(net, op, inj, wl, wu, t, extra, samples, client) -> bool:
-    rep = validate_box(net, op, inj, -t * wl, t * wu, samples=samples, max_vertices=12, seed=1, client=client,
-                       extra_points=t * extra if len(extra) else None)
+def feasible(net, op, inj, wl, wu, t, extra, samples, client, policy="slack", part=None) -> bool:
+    rep = validate_box(net, op, inj, -t * wl, t * wu, policy, part, samples=samples, max_vertices=12, seed=1,
+                       client=client, extra_points=t * extra if len(extra) else None)
     return rep.passed
 
 
-def true_t(net, op, inj, wl, wu, start, extra, samples, client, steps) -> tuple[float, float]:
+def true_t(net, op, inj, wl, wu, start, extra, samples, client, steps, policy="slack", part=None
+           ) -> tuple[float, float]:
     """Bisection for the empirical upper bound of the true t: (largest t that passed, smallest that failed)."""
     ok_t, bad_t = 0.0, max(start, 1e-6)
     for _ in range(12):
-        if not feasible(net, op, inj, wl, wu, bad_t, extra, samples, client):
+        if not feasible(net, op, inj, wl, wu, bad_t, extra, samples, client, policy, part):
             break
         ok_t, bad_t = bad_t, bad_t * 2
     else:
         return ok_t, float("inf")
     for _ in range(steps):
         mid = 0.5 * (ok_t + bad_t)
-        if feasible(net, op, inj, wl, wu, mid, extra, samples, client):
+        if feasible(net, op, inj, wl, wu, mid, extra, samples, client, policy, part):
             ok_t = mid
         else:
             bad_t = mid
@@ -152,32 +156,37 @@ def per_axis(net, op, inj, t_box, samples, client, axes=6) -> list[float]:
     return out
 
 
-def run_case(name: str, pub: dict, client, samples: int, steps: int) -> list[dict]:
+def run_case(name: str, pub: dict, client, samples: int, steps: int, scenarios: str = "AB",
+             policy: str = "slack") -> list[dict]:
     net = read_case(case_path(name))
     t0 = time.perf_counter()
     plain = solve_opf(net)
     opf_time = time.perf_counter() - t0
-    opf = None
-    for margin in MARGINS:
+    opf, margin_gen = None, None
+    ladder = [(m, None) for m in MARGINS] + [(m, 0.0) for m in MARGINS] + [(0.0, None)]
+    for margin, margin_gen in ladder:
         try:
-            opf = solve_opf(net, margin, compare_base=False)
+            opf = solve_opf(net, margin, compare_base=False, margin_gen=margin_gen)
             break
         except RobustboxError:
             continue
     ref = pub.get(name, (net.n_bus, float("nan")))[1]
     records = []
     if opf is None:
-        return [{"case": name, "buses": net.n_bus, "error": "no margin OPF solved (margins 0.1 to 0.01)"}]
+        return [{"case": name, "buses": net.n_bus, "error": "no margin OPF solved (margins 0.1 to 0.01, also with "
+                 "untightened generator P and Q limits)"}]
     op = opf.point
-    for scen in ("A", "B"):
+    for scen in scenarios:
         inj = load_injections(net, 1.0) if scen == "A" else site_injections(net, largest_load_pq_buses(net, 5), 1.0)
         if not inj:
             records.append({"case": name, "buses": net.n_bus, "scenario": scen, "error": "no uncertain injection"})
             continue
-        rec = {"case": name, "buses": net.n_bus, "scenario": scen, "uncertain": len(inj), "margin": opf.margin,
+        rec = {"case": name, "buses": net.n_bus, "scenario": scen, "policy": policy, "uncertain": len(inj),
+               "margin": opf.margin, "margin_gen": opf.margin if margin_gen is None else margin_gen,
                "opf_cost": opf.objective_per_h, "published_ac": ref, "plain_opf_cost": plain.objective_per_h,
                "cost_increase_pct": 100 * (opf.objective_per_h - ref) / ref, "opf_time_s": opf_time}
-        ns = build_system(net, op, inj)
+        ns = build_system(net, op, inj, policy)
+        part = ns.participation if policy == "distributed" else None
         wl, wu = ns.system.uncertain.band_lower, ns.system.uncertain.band_upper
         t1 = time.perf_counter()
         try:
@@ -197,7 +206,8 @@ def run_case(name: str, pub: dict, client, samples: int, steps: int) -> list[dic
         rec.update({"certified_t": t_cert, "binding": binding, "binding_class": binding_class(binding),
                     "time_ratio": rec["cert_time_s"] / opf_time})
         if cert is not None and t_cert > 0:
-            val = validate_box(net, op, inj, cert.lower, cert.upper, samples=samples, max_vertices=12, client=client)
+            val = validate_box(net, op, inj, cert.lower, cert.upper, policy, part, samples=samples, max_vertices=12,
+                               client=client)
             rec.update({"validation_points": val.points, "validation_violations": val.violations + val.not_converged})
         c, up, lo = linear_sensitivities(ns)
         t_lin = linear_t(c, up, lo, wl, wu)
@@ -211,14 +221,16 @@ def run_case(name: str, pub: dict, client, samples: int, steps: int) -> list[dic
         t_naive = linear_t(c, up, lo, wl, wu, shrink=err)
         rec.update({"linear_t": t_lin, "naive_shrunk_t": t_naive, "naive_shrunk_empty": t_naive <= 0})
         extra = worst_vertices(c, up, lo, wl, wu)
-        lin_rep = validate_box(net, op, inj, -t_lin * wl, t_lin * wu, samples=samples, max_vertices=12, client=client,
-                               extra_points=t_lin * extra if len(extra) else None) if np.isfinite(t_lin) else None
+        lin_rep = validate_box(net, op, inj, -t_lin * wl, t_lin * wu, policy, part, samples=samples, max_vertices=12,
+                               client=client, extra_points=t_lin * extra if len(extra) else None
+                               ) if np.isfinite(t_lin) else None
         if lin_rep is not None:
             rec["linear_box_violating_share"] = (lin_rep.violations + lin_rep.not_converged) / lin_rep.points
-        ok_t, bad_t = true_t(net, op, inj, wl, wu, max(t_cert, min(t_lin, 1e3)), extra, samples, client, steps)
+        ok_t, bad_t = true_t(net, op, inj, wl, wu, max(t_cert, min(t_lin, 1e3)), extra, samples, client, steps,
+                             policy, part)
         rec.update({"true_t_upper": bad_t, "true_t_passed": ok_t,
                     "ratio": t_cert / bad_t if np.isfinite(bad_t) and bad_t > 0 else float("nan")})
-        axes = per_axis(net, op, inj, t_cert, samples, client) if net.n_bus <= 120 else []
+        axes = per_axis(net, op, inj, t_cert, samples, client) if net.n_bus <= 120 and policy == "slack" else []
         rec.update({"axis_ratio_median": float(np.median(axes)) if axes else float("nan"),
                     "axis_ratio_min": float(np.min(axes)) if axes else float("nan")})
         records.append(rec)
@@ -239,6 +251,9 @@ def main() -> None:
     ap.add_argument("--steps", type=int, default=8, help="bisection steps for the true t")
     ap.add_argument("--workers", type=int, default=2, help="Dask workers for the power flows (0: none)")
     ap.add_argument("--out", default=str(OUT))
+    ap.add_argument("--scenarios", default="AB", help="A, B or AB")
+    ap.add_argument("--policy", choices=["slack", "distributed"], default="slack")
+    ap.add_argument("--append", action="store_true", help="add to the records already in --out")
     args = ap.parse_args()
     pub = published()
     names = args.cases or sorted((n for n, (b, _) in pub.items() if b <= args.max_buses), key=lambda n: (pub[n][0], n))
@@ -248,10 +263,10 @@ def main() -> None:
         client = Client(LocalCluster(n_workers=args.workers, threads_per_worker=1, dashboard_address=None))
     print(f"{'case':<30}{'sc':>2}{'s':>5}{'marg':>6}{'cost+':>9}{'cert t':>11}{'true t<=':>11}{'ratio':>7}"
           f"{'axis':>7}{'lin t':>11}{'viol':>7}{'naive':>9}{'cert s':>8}{'/OPF':>7}{'MB':>8}{'bad':>5}  binding")
-    records = []
+    records = json.loads(Path(args.out).read_text()) if args.append and Path(args.out).exists() else []
     for name in names:
         try:
-            records.extend(run_case(name, pub, client, args.samples, args.steps))
+            records.extend(run_case(name, pub, client, args.samples, args.steps, args.scenarios, args.policy))
         except RobustboxError as exc:
             records.append({"case": name, "error": str(exc)})
             print(f"{name:<30} error: {exc}", flush=True)

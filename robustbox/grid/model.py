@@ -41,10 +41,16 @@ def _tighten(lo: np.ndarray, hi: np.ndarray, margin: float) -> tuple[np.ndarray,
     return lo + margin * width, hi - margin * width
 
 
-def build_opf(net: Network, margin: float = 0.0) -> pyo.ConcreteModel:
-    """The AC-OPF of ``net`` as a Pyomo model (per unit; cost in $/h)."""
-    if not 0.0 <= margin < 0.5:
-        raise NetworkError(f"margin must be in [0, 0.5), got {margin}")
+def build_opf(net: Network, margin: float = 0.0, margin_gen: float | None = None) -> pyo.ConcreteModel:
+    """The AC-OPF of ``net`` as a Pyomo model (per unit; cost in $/h).
+
+    ``margin`` tightens every limit by that fraction of its range; ``margin_gen``
+    (default: ``margin``) is used for the generators' P and Q limits instead,
+    e.g. 0 for congested cases whose load needs the full generation range.
+    """
+    margin_gen = margin if margin_gen is None else margin_gen
+    if not (0.0 <= margin < 0.5 and 0.0 <= margin_gen < 0.5):
+        raise NetworkError(f"margin must be in [0, 0.5), got {margin} (active power {margin_gen})")
     if net.gencost is None:
         raise NetworkError(f"{net.source}: no mpc.gencost table, so there is no OPF objective")
     n, base = net.n_bus, net.base_mva
@@ -56,8 +62,8 @@ def build_opf(net: Network, margin: float = 0.0) -> pyo.ConcreteModel:
     m.G = pyo.RangeSet(0, len(on) - 1)
     vmin, vmax = _tighten(net.bus[:, VMIN], net.bus[:, VMAX], margin)
     lim = net.gen_limits_pu()
-    pmin, pmax = _tighten(lim["pmin"], lim["pmax"], margin)
-    qmin, qmax = _tighten(lim["qmin"], lim["qmax"], margin)
+    pmin, pmax = _tighten(lim["pmin"], lim["pmax"], margin_gen)
+    qmin, qmax = _tighten(lim["qmin"], lim["qmax"], margin_gen)
     vm0, va0 = net.bus[:, VM], np.radians(net.bus[:, VA] - net.bus[s, VA])
     m.x = pyo.Var(pyo.RangeSet(0, 2 * n - 1), initialize=lambda _, i: float(
         vm0[i] * np.cos(va0[i]) if i < n else vm0[i - n] * np.sin(va0[i - n])))
@@ -159,8 +165,9 @@ def _point_of(net: Network, model: pyo.ConcreteModel, objective: float) -> Opera
     return OperatingPoint(np.abs(v), np.angle(v), pg, qg, objective)
 
 
-def solve_opf(net: Network, margin: float = 0.0, tol: float = 1e-8, compare_base: bool = True) -> OPFResult:
-    """Solve the AC-OPF (tightened by ``margin``) with Ipopt through our bridge.
+def solve_opf(net: Network, margin: float = 0.0, tol: float = 1e-8, compare_base: bool = True,
+              margin_gen: float | None = None) -> OPFResult:
+    """Solve the AC-OPF (tightened by ``margin``; ``margin_gen`` for generator P and Q, see build_opf) with Ipopt.
 
     With a margin and ``compare_base``, the untightened OPF is solved first and
     its optimum is reported beside the tightened one (the price of security).
@@ -171,7 +178,7 @@ def solve_opf(net: Network, margin: float = 0.0, tol: float = 1e-8, compare_base
     if margin > 0 and compare_base:
         base = solve_opf(net, 0.0, tol, compare_base=False)
         base_obj, warm = base.objective_per_h, base.point
-    model = build_opf(net, margin)
+    model = build_opf(net, margin, margin_gen)
     if warm is not None:
         v = warm.voltage
         for i in range(2 * net.n_bus):
