@@ -29,7 +29,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 from pyomo.common.collections import ComponentMap
-from pyomo.common.config import ConfigDict, ConfigValue, In, NonNegativeFloat, PositiveFloat
+from pyomo.common.config import (ConfigDict, ConfigValue, In, NonNegativeFloat, PositiveFloat,
+                                  document_kwargs_from_configdict)
 from pyomo.core.base.transformation import Transformation, TransformationFactory
 from pyomo.core.expr.visitor import identify_mutable_parameters, identify_variables
 from pyomo.environ import Block, Constraint, Param, RangeSet, Suffix, Var, value
@@ -67,6 +68,7 @@ def _expand(items) -> list:
 
 
 @TransformationFactory.register(NAME, doc="Replace nonconvex quadratic equalities by a certified box of injections")
+@document_kwargs_from_configdict("CONFIG")
 class InjectionBox(Transformation):
     """Replace the model's quadratic equalities by a certified box of injections (see module doc)."""
 

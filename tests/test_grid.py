@@ -33,6 +33,31 @@ def test_admittance_matches_pypower_makeybus(name):
 
 
 @pytest.mark.parametrize("name", CASES)
+def test_rectangular_forms_match_pypower_flows(name):
+    # Reference: PYPOWER 5.1.21 runpf branch flows (columns PF, QF, PT, QT of the branch table, MW/Mvar)
+    # and makeYbus's Yf, Yt for the branch currents; our forms evaluated at PYPOWER's voltages.
+    from robustbox.grid.forms import branch_flow_forms, current_forms, injection_forms, voltage_forms
+    res, ok = pypower.runpf(getattr(pypower, name)(), pypower.ppoption(VERBOSE=0, OUT_ALL=0, PF_TOL=1e-12))
+    assert ok
+    net = _net(name)
+    v = res["bus"][:, 7] * np.exp(1j * np.radians(res["bus"][:, 8]))
+    x = np.concatenate([v.real, v.imag])
+    on = net.branch_on
+    flows = branch_flow_forms(net).evaluate(x).reshape(-1, 4) * net.base_mva
+    assert np.max(np.abs(flows - res["branch"][on][:, 13:17])) <= 1e-8  # MW/Mvar
+    ppc = pypower.ext2int(getattr(pypower, name)())
+    _, yf, yt = pypower.makeYbus(ppc["baseMVA"], ppc["bus"], ppc["branch"])
+    cur = current_forms(net).evaluate(x).reshape(-1, 2)
+    assert np.max(np.abs(cur[:, 0] - np.abs(yf @ v) ** 2)) <= 1e-8
+    assert np.max(np.abs(cur[:, 1] - np.abs(yt @ v) ** 2)) <= 1e-8
+    assert np.max(np.abs(voltage_forms(net).evaluate(x) - np.abs(v) ** 2)) <= 1e-12
+    ybus = pypower.makeYbus(ppc["baseMVA"], ppc["bus"], ppc["branch"])[0]
+    s_bus = v * np.conj(ybus @ v)
+    inj = injection_forms(net).evaluate(x)
+    assert np.max(np.abs(inj - np.concatenate([s_bus.real, s_bus.imag]))) <= 1e-8
+
+
+@pytest.mark.parametrize("name", CASES)
 def test_power_flow_matches_pypower_runpf(name):
     # Reference: PYPOWER 5.1.21 runpf (Newton, MATPOWER's default) with PF_TOL = 1e-12.
     res, ok = pypower.runpf(getattr(pypower, name)(), pypower.ppoption(VERBOSE=0, OUT_ALL=0, PF_TOL=1e-12))

@@ -20,7 +20,7 @@ from conftest import pglib_case
 from robustbox import ModelStructureError, OperatingPointError
 from robustbox.grid.casefile import read_case
 from robustbox.grid.model import build_opf
-from robustbox.grid.network import Network
+from robustbox.grid.network import GEN_BUS, Network
 from robustbox.grid.system import Injection, OperatingPoint
 from robustbox.solve import solve_model
 from robustbox.transform import InjectionBox, certificate_of, restore
@@ -168,26 +168,39 @@ def _network_model(name: str, margin: float) -> tuple[Network, pyo.ConcreteModel
 
 
 @pytest.mark.parametrize("name, margin", [("pglib_opf_case14_ieee", 0.05), ("pglib_opf_case30_ieee", 0.02)])
-def test_pglib_network_rewrite_validates(name, margin):
+def test_pglib_network_rewrite_lp_and_ac_validation(name, margin):
+    """Loads (uncertain, ±20 %) and the dispatch of the non-slack generators (decided by an LP) get a box."""
     net, m = _network_model(name, margin)
     n = net.n_bus
     s, _, _ = net.bus_kinds()
     gb = net.gen_bus_idx()
-    held = [m.pg[g] for g in m.G if gb[g] != s] + [m.x[i] ** 2 + m.x[n + i] ** 2 for i in sorted(set(gb.tolist()))]
+    flexible = [g for g in m.G if gb[g] != s and m.pg[g].ub > m.pg[g].lb]
+    held = [m.x[i] ** 2 + m.x[n + i] ** 2 for i in sorted(set(gb.tolist()))]
     loads = [m.pd[i] for i in range(n) if pyo.value(m.pd[i]) > 0]
+    band = ComponentMap([(p, 0.2 * pyo.value(p)) for p in loads] + [(m.pg[g], 0.2) for g in flexible])
+    x = np.array([pyo.value(m.x[i]) for i in range(2 * n)])
+    pg0 = np.array([pyo.value(m.pg[g]) for g in m.G])
+    qg0 = np.array([pyo.value(m.qg[g]) for g in m.G])
     m.cost.deactivate()
-    pyo.TransformationFactory(XF).apply_to(m, injections=loads, relative_band=0.2, held=held)
+    pyo.TransformationFactory(XF).apply_to(m, injections=loads + [m.pg[g] for g in flexible], band=band, held=held)
     cert = certificate_of(m)
     assert cert.status == "certified" and cert.certified_fraction > 0
-    x = np.array([pyo.value(m.x[i]) for i in range(2 * n)])
+    # downstream LP: linear generation cost of the flexible units (coefficients from the case's gencost)
+    c1 = {g: net.gencost[net.gen_on[g], 5] for g in m.G}
+    m.dispatch = pyo.Objective(expr=sum(c1[g] * m.pg[g] for g in flexible))
+    res = pyo.SolverFactory("appsi_highs").solve(m)
+    assert str(res.solver.termination_condition) == "optimal"
+    chosen = np.array([pyo.value(m.pg[g]) for g in flexible]) - pg0[flexible]
     v = x[:n] + 1j * x[n:]
-    op = OperatingPoint(np.abs(v), np.angle(v), np.array([pyo.value(m.pg[g]) for g in m.G]),
-                        np.array([pyo.value(m.qg[g]) for g in m.G]))
-    buses = [int(net.bus[int(p.index()), 0]) for p in loads]
-    inj = [Injection(b, "p", 0, 0) for b in buses]
-    # a load increase is a net-injection decrease
-    rep = validate_box(net, op, inj, -cert.upper, -cert.lower, samples=300)
-    assert rep.passed, rep.examples
+    op = OperatingPoint(np.abs(v), np.angle(v), pg0, qg0)
+    inj = [Injection(int(net.bus[int(p.index()), 0]), "p", 0, 0) for p in loads]
+    inj += [Injection(int(net.gen[net.gen_on[g], GEN_BUS]), "p", 0, 0) for g in flexible]
+    k = len(loads)
+    # a load increase is a net-injection decrease; the dispatch sits at the LP's choice
+    lower = np.concatenate([-cert.upper[:k], chosen])
+    upper = np.concatenate([-cert.lower[:k], chosen])
+    rep = validate_box(net, op, inj, lower, upper, samples=500)
+    assert rep.passed and rep.points >= 500, rep.examples
 
 
 def test_errors_are_named():

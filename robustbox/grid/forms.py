@@ -7,7 +7,8 @@ For a complex admittance y = g + j b and buses a, b,
                     + j [ f_a(g e_b − b f_b) − e_a(g f_b + b e_b) ],
 
 so bus injections S_i = Σ_k V_i conj(Y_ik V_k), branch-end flows
-S_f = V_f conj(Yff V_f + Yft V_t) and |V_i|² = e_i² + f_i² are all quadratic.
+S_f = V_f conj(Yff V_f + Yft V_t), branch-end currents |I_f|² = |Yff V_f + Yft V_t|²
+and |V_i|² = e_i² + f_i² are all quadratic.
 Branch apparent-power limits are represented (in :mod:`robustbox.grid.system`)
 by an inscribed regular polygon in the (P, Q) plane built on these flow rows.
 Angle-difference
@@ -78,6 +79,37 @@ def branch_flow_forms(net: Network) -> QuadraticMap:
         tag = f"{fb}-{tb}#{r + 1}"
         names += [f"Pf[{tag}]", f"Qf[{tag}]", f"Pt[{tag}]", f"Qt[{tag}]"]
     return QuadraticMap.from_terms(2 * n, names, quad, ([], [], []))
+
+
+def current_forms(net: Network) -> QuadraticMap:
+    """Rows |I_f|², |I_t|² of the branch-end currents (per unit squared), 2 rows per in-service branch.
+
+    I_f = Yff V_f + Yft V_t is linear in x, with Re I = Σ (g e − b f) and Im I = Σ (g f + b e),
+    so |I_f|² = (Re I_f)² + (Im I_f)² is quadratic.
+    """
+    n = net.n_bus
+    yff, yft, ytf, ytt = net.branch_admittances()
+    f, t = net.branch_ends()
+    rows_q, a_q, b_q, v_q, names = [], [], [], [], []
+    for end, (y_self, y_other, a, b) in enumerate(((yff, yft, f, t), (ytt, ytf, t, f))):
+        for k in range(len(f)):
+            # real and imaginary parts of I as linear functionals on (e_a, f_a, e_b, f_b)
+            idx = np.array([a[k], n + a[k], b[k], n + b[k]])
+            g1, b1, g2, b2 = y_self[k].real, y_self[k].imag, y_other[k].real, y_other[k].imag
+            re = np.array([g1, -b1, g2, -b2])
+            im = np.array([b1, g1, b2, g2])
+            outer = np.outer(re, re) + np.outer(im, im)
+            ia, ib = np.triu_indices(4)
+            coef = np.where(ia == ib, outer[ia, ib], 2.0 * outer[ia, ib])
+            rows_q.append(np.full(len(ia), 2 * k + end))
+            a_q.append(idx[ia])
+            b_q.append(idx[ib])
+            v_q.append(coef)
+    for r in net.branch_on:
+        tag = f"{int(net.branch[r, 0])}-{int(net.branch[r, 1])}#{int(r) + 1}"
+        names += [f"I2f[{tag}]", f"I2t[{tag}]"]
+    cat = (lambda xs: np.concatenate(xs) if xs else np.zeros(0))
+    return QuadraticMap.from_terms(2 * n, names, (cat(rows_q), cat(a_q), cat(b_q), cat(v_q)), ([], [], []))
 
 
 def angle_forms(net: Network) -> QuadraticMap:
