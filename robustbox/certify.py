@@ -47,6 +47,9 @@ class CertifyOptions:
     residual_tolerance:   largest |F(z̄) − ȳ| accepted at the operating point
                           (in the equations' units, per unit for networks).
     condition_limit:      largest accepted 1-norm condition estimate of J.
+    recenter:             for an asymmetric band (uniform objective), also try moving the
+                          operating point to the solution at the box centre (the residual
+                          F(z_c) − ȳ is carried exactly like r0); keeps the better box.
     """
 
     remainder: RemainderOptions = RemainderOptions()
@@ -56,6 +59,7 @@ class CertifyOptions:
     precision: float = 1e-3
     residual_tolerance: float = 1e-6
     condition_limit: float = 1e12
+    recenter: bool = True
 
 
 @dataclass(frozen=True)
@@ -250,9 +254,13 @@ class _Conditions:
         a_lo = iab + self.r0 + self.r0_err + qhi
         a_lo = a_lo + sum_error(iab, self.r0, self.r0_err, qhi)
         hlo, hhi = self.lim_bound(omega, delta)
-        up_c, lo_c = np.maximum(a_up, 0.0), np.maximum(a_lo, 0.0)
-        g_up = matvec_upper(self.g_pos, up_c) + matvec_upper(self.g_neg, lo_c)
-        g_dn = matvec_upper(self.g_pos, lo_c) + matvec_upper(self.g_neg, up_c)
+        # w − E p lies in [−a_lo, a_up] (signs free: a moved operating point shifts it), so
+        # G (w − E p) ≤ G⁺ a_up + G⁻ a_lo and ≥ −(G⁺ a_lo + G⁻ a_up), with their rounding errors
+        g_up = self.g_pos @ a_up + self.g_neg @ a_lo
+        g_dn = self.g_pos @ a_lo + self.g_neg @ a_up
+        g_err = matvec_upper(self.g_pos, np.abs(a_up) + np.abs(a_lo)) + matvec_upper(self.g_neg, np.abs(a_up) + np.abs(a_lo))
+        g_err = inflate(gamma(self.g_pos.shape[1] + 2) * g_err, 2)
+        g_up, g_dn = g_up + g_err, g_dn + g_err
         lerr = matvec_upper(self.lin_err, delta)
         # h ≤ h̄ + err + Cp + g_up + hhi + lerr  ;  h ≥ h̄ − err − C(−p) − g_dn + hlo − lerr
         lim_up = self.h_bar + self.h_err + g_up + hhi + lerr
@@ -265,9 +273,11 @@ class _Conditions:
                   terms: dict[str, np.ndarray] | None = None) -> np.ndarray:
         """T̂(ω): proven upper bound of |T(w)| over |w| ≤ ω."""
         terms = terms or self.region_terms(omega)
-        up = inflate(ep_max + np.maximum(terms["a_up"], 0.0), 2)
-        lo = inflate(ep_neg + np.maximum(terms["a_lo"], 0.0), 2)
-        return np.maximum(up, lo)
+        up = ep_max + terms["a_up"]
+        up = up + sum_error(ep_max, terms["a_up"])
+        lo = ep_neg + terms["a_lo"]
+        lo = lo + sum_error(ep_neg, terms["a_lo"])
+        return np.maximum(np.maximum(up, lo), 0.0)
 
     def margins(self, lower: np.ndarray, upper: np.ndarray, omega: np.ndarray,
                 terms: dict[str, np.ndarray] | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -326,7 +336,8 @@ class _Conditions:
         six growing increments in a row end the search as divergent.
         """
         ep_max, ep_neg, cp_max, cp_neg = self.injection_terms(lower, upper)
-        omega = np.maximum(ep_max, ep_neg)
+        # start below every fixed point: the reach of the box after the residual's shift (≥ 0)
+        omega = np.maximum(np.maximum(ep_max - self.r0 - self.r0_err, ep_neg + self.r0 - self.r0_err), 0.0)
         if start is not None:
             omega = np.maximum(omega, start)
         step_prev, growing = 0.0, 0
@@ -416,7 +427,7 @@ def _max_t_at(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarra
     s_up, s_lo, c_up, c_lo = eng.injection_terms(-wl, wu)
     up, lo = eng.stack(terms["lim_up"], terms["lim_lo"])
     n_mon = len(c_lo)
-    slack = np.concatenate([omega - np.maximum(terms["a_up"], 0), omega - np.maximum(terms["a_lo"], 0),
+    slack = np.concatenate([omega - terms["a_up"], omega - terms["a_lo"],
                             eng.row_upper - up, lo[:n_mon] - eng.row_lower[:n_mon]])
     coef = np.concatenate([s_up, s_lo, eng.stack_coefficients(c_up, c_lo), c_lo])
     if limits_only:
@@ -477,7 +488,7 @@ def _lp_box(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarray,
     n_mon = cp.shape[0]
     a_rows = [np.hstack([e_pos, e_neg]), np.hstack([e_neg, e_pos]),
               eng.stack_coefficients(np.hstack([cp, cn]), np.hstack([cn, cp])), np.hstack([cn, cp])]
-    rhs = [omega - np.maximum(terms["a_up"], 0), omega - np.maximum(terms["a_lo"], 0),
+    rhs = [omega - terms["a_up"], omega - terms["a_lo"],
            eng.row_upper - up, lo[:n_mon] - eng.row_lower[:n_mon]]
     a_ub, b_ub = np.vstack(a_rows), np.concatenate(rhs)
     finite = np.isfinite(b_ub)
@@ -554,6 +565,72 @@ def _lp_search(eng: _Conditions, opts: CertifyOptions, wl: np.ndarray, wu: np.nd
     return best[1], best[2], best[3]
 
 
+def _solve_at(system: QuadraticSystem, shift: np.ndarray, start: np.ndarray, max_iter: int = 30) -> np.ndarray | None:
+    """Newton's method for F(z) = ȳ + shift from ``start``; None if it does not converge."""
+    eq = system.equations
+    goal = system.target + shift
+    z = start.copy()
+    scale = 1.0 + np.max(np.abs(goal), initial=0.0)
+    for _ in range(max_iter):
+        res = eq.evaluate(z) - goal
+        if np.max(np.abs(res), initial=0.0) <= 1e-13 * scale:
+            return z
+        try:
+            step = spla.spsolve(sp.csc_matrix(eq.jacobian(z)), -res) if eq.n_rows == eq.n_vars else None
+        except RuntimeError:
+            return None
+        if step is None or not np.all(np.isfinite(step)):
+            return None
+        z = z + step
+    res = eq.evaluate(z) - goal
+    return z if np.max(np.abs(res), initial=0.0) <= 1e-10 * scale else None
+
+
+def _recentered(system: QuadraticSystem, point: np.ndarray, opts: CertifyOptions, wl: np.ndarray, wu: np.ndarray,
+                t_floor: float, t_cap: float) -> tuple[float, _Conditions, np.ndarray] | None:
+    """Largest t in (t_floor, t_cap] certified around the solution at the centre of [−t wl, t wu].
+
+    The operating point moves to z_c solving F(z_c) = ȳ + E p_c, p_c = t (wu − wl)/2; the box in the
+    original coordinates is unchanged, so the residual F(z_c) − ȳ ≈ E p_c is carried as r0 and every
+    condition is the same proven one.  Each trial factorises a new Jacobian: a handful of trials only.
+    """
+    e = system.uncertain.equation_map
+    centre = 0.5 * (wu - wl)
+    best = None
+    z_prev = point
+
+    def attempt(t: float):
+        nonlocal z_prev
+        z_c = _solve_at(system, e @ (t * centre), z_prev)
+        if z_c is None:
+            return None
+        h = system.limits.evaluate(z_c) + system.uncertain.limit_map @ (t * centre)
+        if np.any(h > system.limit_upper) or np.any(h < system.limit_lower):
+            return None
+        try:
+            k, policy = _recourse_matrix(system.equations.jacobian(z_c), system.equations.names, opts.condition_limit)
+        except CertificateError:
+            return None
+        eng = _Conditions(system, z_c, k, policy, opts.remainder)
+        found, omega = eng.least_omega(-t * wl, t * wu, opts.inflation, opts.max_iterations)
+        if not found:
+            return None
+        z_prev = z_c
+        return eng, omega
+
+    lo, hi = t_floor, t_cap
+    for _ in range(10):
+        if hi <= lo * (1 + 10 * opts.precision):
+            break
+        mid = np.sqrt(lo * hi) if lo > 0 else 0.5 * hi  # geometric bisection
+        got = attempt(mid)
+        if got is None:
+            hi = mid
+        else:
+            lo, best = mid, (mid, *got)
+    return best
+
+
 # ---------------------------------------------------------------------- entry
 def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "uniform", *,
             box: tuple[np.ndarray, np.ndarray] | None = None, weights: np.ndarray | None = None,
@@ -607,6 +684,13 @@ def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "
         _, omega = eng.least_omega(lower, upper, options.inflation, options.max_iterations)
     elif objective == "uniform":
         t, omega = _uniform(eng, options, wl, wu)
+        if options.recenter and np.any(wl != wu) and t < options.max_fraction:
+            t_cap = min(options.max_fraction, _max_t_at(eng, omega, wl, wu, limits_only=True) * 4.0)
+            moved = _recentered(system, point, options, wl, wu, t, max(t_cap, t))
+            if moved is not None and moved[0] > t:
+                t, eng, omega = moved
+                point = eng.point
+                policy = eng.policy + "; operating point moved to the solution at the box centre"
         lower, upper = -t * wl, t * wu
     elif objective in ("hosting", "widths", "volume"):
         t, omega_u = _uniform(eng, options, wl, wu)
