@@ -26,6 +26,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
+from .errors import CertificateError
 from .quadratic import QuadraticMap
 from .rounding import gamma, inflate, matvec_upper
 
@@ -119,7 +120,7 @@ class RemainderBound:
                 and qmap.n_rows * m * m <= options.combined_max_size):
             self._combined = self._build_combined(k_matrix, abs_k)
         if not ("plain" in self.methods or self._splits or self._combined is not None or not qmap.n_rows):
-            raise ValueError(f"none of the remainder methods {self.methods} applies here (the combined bound "
+            raise CertificateError(f"none of the remainder methods {self.methods} applies here (the combined bound "
                              f"needs {qmap.n_rows * m * m} entries > combined_max_size; 'anchored' needs a "
                              "symmetry direction); add 'plain' or 'eigen'")
 
