@@ -31,6 +31,10 @@ def _fmt(x, spec=".3g") -> str:
 def main() -> None:
     allrecs = json.loads(RESULTS.read_text())
     recs = [r for r in allrecs if "error" not in r]
+    for r in recs:  # no room at the operating point (true t ≈ 0): a ratio says nothing there
+        if not r.get("true_t_upper", 0) > 1e-6:
+            r["ratio"] = r["axis_ratio_median"] = r["axis_ratio_min"] = float("nan")
+            r["binding_class"] = "no room at the operating point"
     done = {(r["case"], r["scenario"], r.get("policy", "slack")) for r in recs}
     # an error record counts only when no later run of the same case (and scenario) produced a result
     errors = [r for r in allrecs if "error" in r and not any(
