@@ -117,6 +117,20 @@ def main() -> None:
                 f"| {_fmt(r['cert_time_s'], '.2f')} | {_fmt(r['time_ratio'], '.2f')} | {_fmt(r['cert_peak_mb'], '.0f')} "
                 f"| {r['binding_class']} |")
         lines.append("")
+    large = ROOT / "bench" / "results" / "large_cases.json"
+    if large.exists():
+        lines += ["## Large cases (certificate and validation only; `python bench/large_cases.py`)", "",
+                  "| case | buses | uncertain | certified t (scenario A) | cert s | one AC-OPF s | cert/OPF | "
+                  "validation points / violations | peak RSS MB | binding |", "|---|---|---|---|---|---|---|---|---|---|"]
+        for r in json.loads(large.read_text()):
+            if "error" in r:
+                lines.append(f"| {r['case'].replace('pglib_opf_', '')} | {r['buses']} | – | {r['error'][:80]} | | | | | | |")
+                continue
+            lines.append(f"| {r['case'].replace('pglib_opf_', '')} | {r['buses']} | {r['uncertain']} | {_fmt(r['certified_t'], '.4g')} "
+                         f"| {_fmt(r['cert_time_s'], '.1f')} | {_fmt(r['opf_time_s'], '.1f')} "
+                         f"| {_fmt(r['cert_time_s'] / r['opf_time_s'], '.2f')} | {r['validation_points']} / "
+                         f"{r['validation_violations']} | {_fmt(r['peak_rss_mb'], '.0f')} | {r['binding']} |")
+        lines.append("")
     if errors:
         lines += ["## Cases without a result", ""] + [f"- {e['case']} {e.get('scenario', '')}: {e['error']}" for e in errors] + [""]
     lines += ["## Figures", "", "![certified vs true](figures/certified_vs_true.png)", "",
