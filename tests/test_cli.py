@@ -14,7 +14,7 @@ def test_demo_writes_report_with_figures(tmp_path, capsys):
     html = (tmp_path / "report.html").read_text()
     assert "Caution" in html and "data:image/png;base64," in html
     for fig in ("envelope.png", "slice.png", "network.png"):
-        assert (tmp_path / fig).stat().st_size > 5000
+        assert (tmp_path / fig).stat().st_size > 5000  # a blank figure is smaller (common practice, no source)
     data = json.loads((tmp_path / "box.json").read_text())
     assert data["status"] == "certified" and 0 < data["certified_fraction"] <= 1
     assert "0 violations" in capsys.readouterr().out
@@ -78,6 +78,6 @@ def test_report_slice_for_chosen_injections(tmp_path):
     out = tmp_path / "rep"
     assert main(["certify", str(demo_case_path()), "--uncertain", "renewables", "--band", "0.5",
                  "--report", str(out), "--slice", "p[24],p[9]"]) == 0
-    assert (out / "slice.png").stat().st_size > 5000
+    assert (out / "slice.png").stat().st_size > 5000  # a blank figure is smaller (common practice, no source)
     assert main(["certify", str(demo_case_path()), "--uncertain", "renewables", "--report", str(out),
                  "--slice", "p[24],p[999]"]) == 2

@@ -96,7 +96,7 @@ def test_reader_accepts_format_variants(tmp_path):
     path = tmp_path / "tiny.m"
     path.write_text(CASE_TEXT)
     net = read_case(path)
-    assert net.n_bus == 2 and net.bus[1, 2] == 50.0 and net.branch[0, 3] == 0.1
+    assert net.n_bus == 2 and net.bus[1, 2] == 50.0 and net.branch[0, 3] == 0.1  # values written in CASE_TEXT
 
 
 @pytest.mark.parametrize("mutation, message", [

@@ -24,7 +24,7 @@ def test_certified_box_passes_sampling_validation(name, uncertain, policy):
     data = result_to_json(res)
     report = check_box(res.network, data, samples=250)
     assert report.passed, report.examples
-    assert report.points >= 250
+    assert report.points >= 250  # the samples asked for above
 
 
 def test_enlarged_box_is_caught_by_validation():

@@ -155,7 +155,7 @@ def test_non_power_qcqp():
         y = (np.sqrt(r + 2 * s) - np.sqrt(r - 2 * s)) / 2
         assert cert.state_lower[0] - 1e-9 <= x <= cert.state_upper[0] + 1e-9
         assert cert.state_lower[1] - 1e-9 <= y <= cert.state_upper[1] + 1e-9
-        assert x >= 0.5 and y <= 2.0
+        assert x >= 0.5 and y <= 2.0  # the model's variable bounds
 
 
 def _network_model(name: str, margin: float) -> tuple[Network, pyo.ConcreteModel]:
