@@ -17,7 +17,7 @@ from .certify import Certificate, CertifyOptions, Objective, certify
 from .errors import NetworkError, OperatingPointError
 from .grid.casefile import read_case
 from .grid.model import OPFResult, solve_opf
-from .grid.network import BUS_I, GEN_BUS, PG, VG, Network
+from .grid.network import BUS_I, GEN_BUS, PG, QMAX, QMIN, VG, Network
 from .grid.powerflow import newton_power_flow
 from .grid.system import (Injection, NetworkSystem, OperatingPoint, build_system, largest_load_pq_buses,
                           load_injections, site_injections)
@@ -101,7 +101,8 @@ def _power_flow_point(net: Network) -> OperatingPoint:
     gb = net.gen_bus_idx()
     on = net.gen_on
     sg = np.zeros(net.n_bus, dtype=complex)
-    np.add.at(sg, gb, net.gen[on, PG] / net.base_mva)
+    fixed_q = np.where(net.gen[on, QMAX] == net.gen[on, QMIN], net.gen[on, QMIN], 0.0)  # no reactive range
+    np.add.at(sg, gb, (net.gen[on, PG] + 1j * fixed_q) / net.base_mva)
     vm = np.ones(net.n_bus)
     vm[gb] = net.gen[on, VG]
     res = newton_power_flow(net.admittance()[0], sg - net.load_pu(), vm.astype(complex), s, pv, pq)

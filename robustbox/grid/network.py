@@ -161,10 +161,17 @@ class Network:
         gens = self.gen_bus_idx()
         return ref if ref in set(gens.tolist()) else int(np.sort(gens)[0])
 
-    def bus_kinds(self) -> tuple[int, np.ndarray, np.ndarray]:
-        """(slack, PV buses, PQ buses) by index; a bus is PV when it has an in-service generator."""
+    def bus_kinds(self, reactive_range: bool = True) -> tuple[int, np.ndarray, np.ndarray]:
+        """(slack, PV buses, PQ buses) by index.
+
+        A bus is PV when it has an in-service generator that can vary its reactive power
+        (Qmin < Qmax); a generator with Qmin = Qmax cannot hold a voltage, so its bus is PQ with
+        that fixed Q.  ``reactive_range=False`` gives MATPOWER's rule (any in-service generator).
+        """
         has_gen = np.zeros(self.n_bus, dtype=bool)
-        has_gen[self.gen_bus_idx()] = True
+        on = self.gen_on
+        can = (self.gen[on, QMAX] > self.gen[on, QMIN]) if reactive_range else np.ones(len(on), dtype=bool)
+        has_gen[self.gen_bus_idx()[can]] = True
         s = self.slack
         pv = np.flatnonzero(has_gen & (np.arange(self.n_bus) != s))
         pq = np.flatnonzero(~has_gen & (np.arange(self.n_bus) != s))

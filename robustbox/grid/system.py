@@ -125,7 +125,7 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     bus_part = _per_bus_sum(net, part)
     inj = injection_forms(net)
     load = net.load_pu()
-    pg_bus = _per_bus_sum(net, op.pg_pu)
+    pg_bus, qg_bus = _per_bus_sum(net, op.pg_pu), _per_bus_sum(net, op.qg_pu)
     n_vars = n_state + (1 if dist else 0)
     p_buses = np.arange(n) if dist else np.setdiff1d(np.arange(n), [s])
     eq_rows = np.concatenate([p_buses, n + pq])
@@ -136,12 +136,14 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     eq_map = eq_map.substitute(new_index, x_full, n_vars, extra)
     vol = voltage_forms(net)
     eq_map = QuadraticMap.stack([eq_map, vol.take(pv).substitute(new_index, x_full, n_vars)])
-    target = np.concatenate([pg_bus[p_buses] - load.real[p_buses], -load.imag[pq], op.vm_pu[pv] ** 2])
+    # a PQ bus may carry generators with a fixed reactive output (Qmin = Qmax)
+    target = np.concatenate([pg_bus[p_buses] - load.real[p_buses], qg_bus[pq] - load.imag[pq], op.vm_pu[pv] ** 2])
     # ------------------------------------------------------------ limits
-    gen_bus = np.unique(net.gen_bus_idx())
+    gen_bus = np.union1d(pv, [s])  # buses whose generators' Q follows the voltage set-point
     pmin_b, pmax_b = _per_bus_sum(net, lim["pmin"]), _per_bus_sum(net, lim["pmax"])
     qmin_b, qmax_b = _per_bus_sum(net, lim["qmin"]), _per_bus_sum(net, lim["qmax"])
-    p_lim_bus = gen_bus[bus_part[gen_bus] > 0] if dist else np.array([s])
+    all_gen_bus = np.unique(net.gen_bus_idx())
+    p_lim_bus = all_gen_bus[bus_part[all_gen_bus] > 0] if dist else np.array([s])
     maps = [vol.take(pq), inj.take(p_lim_bus), inj.take(n + gen_bus)]
     lower = [net.bus[pq, VMIN] ** 2, pmin_b[p_lim_bus] - load.real[p_lim_bus], qmin_b[gen_bus] - load.imag[gen_bus]]
     upper = [net.bus[pq, VMAX] ** 2, pmax_b[p_lim_bus] - load.real[p_lim_bus], qmax_b[gen_bus] - load.imag[gen_bus]]
