@@ -194,6 +194,15 @@ def main(argv: list[str] | None = None) -> int:
             raise
         print(f"robustbox: error: {exc}", file=sys.stderr)
         return EXIT_SOLVE
+    except KeyboardInterrupt:
+        print("robustbox: interrupted", file=sys.stderr)
+        return EXIT_SOLVE
+    except Exception as exc:  # noqa: BLE001 - a bug of ours: one line, the traceback behind --debug
+        if args.debug:
+            raise
+        print(f"robustbox: internal error ({type(exc).__name__}: {exc}); run again with --debug and report it",
+              file=sys.stderr)
+        return EXIT_SOLVE
 
 
 if __name__ == "__main__":
