@@ -27,7 +27,6 @@ from __future__ import annotations
 import argparse
 import csv
 import json
-import os
 import time
 import tracemalloc
 from pathlib import Path
@@ -42,7 +41,8 @@ from robustbox.grid.model import solve_opf
 from robustbox.grid.system import build_system, largest_load_pq_buses, load_injections, site_injections
 from robustbox.validate import validate_box
 
-DATA = Path(os.environ.get("ROBUSTBOX_PGLIB", Path(__file__).resolve().parents[2] / "shared" / "data" / "pglib-opf"))
+from pglib import DATA, case_path  # noqa: E402 - sibling module of the bench scripts
+
 OUT = Path(__file__).resolve().parent / "results" / "conservativeness.json"
 MARGINS = (0.1, 0.05, 0.02, 0.01)
 
@@ -51,10 +51,6 @@ def published() -> dict[str, tuple[int, float]]:
     rows = csv.DictReader(line for line in (DATA / "baseline_ac_objective.csv").read_text().splitlines()
                           if not line.startswith("#"))
     return {r["case"]: (int(r["nodes"]), float(r["ac_objective"])) for r in rows}
-
-
-def case_path(name: str) -> Path:
-    return DATA / ("api" if name.endswith("__api") else "") / f"{name}.m"
 
 
 def binding_class(text: str) -> str:

@@ -10,7 +10,6 @@ Run: python bench/large_cases.py [case names]   (default: pglib_opf_case1354_peg
 from __future__ import annotations
 
 import json
-import os
 import resource
 import sys
 import time
@@ -23,7 +22,8 @@ from robustbox.grid.model import solve_opf
 from robustbox.grid.system import build_system, load_injections
 from robustbox.validate import validate_box
 
-DATA = Path(os.environ.get("ROBUSTBOX_PGLIB", Path(__file__).resolve().parents[2] / "shared" / "data" / "pglib-opf"))
+from pglib import case_path  # noqa: E402 - sibling module of the bench scripts
+
 OUT = Path(__file__).resolve().parent / "results" / "large_cases.json"
 
 
@@ -31,7 +31,7 @@ def main() -> None:
     names = sys.argv[1:] or ["pglib_opf_case1354_pegase"]
     records = json.loads(OUT.read_text()) if OUT.exists() else []
     for name in names:
-        net = read_case(DATA / f"{name}.m")
+        net = read_case(case_path(name))
         t0 = time.perf_counter()
         solve_opf(net, compare_base=False)
         opf_time = time.perf_counter() - t0

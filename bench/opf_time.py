@@ -5,15 +5,14 @@ objective and time of each and the time ratio.  Run: python bench/opf_time.py [c
 """
 from __future__ import annotations
 
-import os
 import sys
 import time
-from pathlib import Path
 
 from robustbox.grid.casefile import read_case
 from robustbox.grid.model import solve_opf
 
-DATA = Path(os.environ.get("ROBUSTBOX_PGLIB", Path(__file__).resolve().parents[2] / "shared" / "data" / "pglib-opf"))
+from pglib import case_path  # noqa: E402 - sibling module of the bench scripts
+
 CASES = sys.argv[1:] or ["pglib_opf_case14_ieee", "pglib_opf_case30_ieee", "pglib_opf_case118_ieee",
                          "pglib_opf_case300_ieee", "pglib_opf_case1354_pegase", "pglib_opf_case2000_goc"]
 
@@ -24,7 +23,7 @@ except ImportError:  # reference library of the test extra
 
 print(f"{'case':<28}{'ours $/h':>14}{'ours s':>9}{'PYPOWER $/h':>14}{'PYPOWER s':>11}{'ratio':>8}")
 for name in CASES:
-    path = DATA / f"{name}.m"
+    path = case_path(name)
     t0 = time.perf_counter()
     net = read_case(path)
     ours = solve_opf(net)

@@ -6,10 +6,8 @@ Run: python bench/remainder_bounds.py [case names...]
 """
 from __future__ import annotations
 
-import os
 import sys
 import time
-from pathlib import Path
 
 from robustbox.bounds import RemainderOptions
 from robustbox.certify import CertifyOptions, certify
@@ -18,14 +16,15 @@ from robustbox.grid.casefile import read_case
 from robustbox.grid.model import solve_opf
 from robustbox.grid.system import build_system, load_injections
 
-DATA = Path(os.environ.get("ROBUSTBOX_PGLIB", Path(__file__).resolve().parents[2] / "shared" / "data" / "pglib-opf"))
+from pglib import case_path  # noqa: E402 - sibling module of the bench scripts
+
 CASES = sys.argv[1:] or ["pglib_opf_case5_pjm", "pglib_opf_case14_ieee", "pglib_opf_case30_as", "pglib_opf_case39_epri",
                          "pglib_opf_case57_ieee", "pglib_opf_case118_ieee"]
 METHODS = [("plain",), ("eigen",), ("anchored",), ("combined",), ("plain", "eigen", "anchored", "combined")]
 
 print(f"{'case':<26}" + "".join(f"{'+'.join(m):>26}" for m in METHODS[:-1]) + f"{'all (tightest per row)':>26}")
 for name in CASES:
-    net = read_case(DATA / f"{name}.m")
+    net = read_case(case_path(name))
     opf = solve_opf(net, 0.05, compare_base=False)
     ns = build_system(net, opf.point, load_injections(net, 1.0))
     cells = []

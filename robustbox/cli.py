@@ -76,7 +76,7 @@ def _cmd_certify(args: argparse.Namespace) -> int:
         except (OSError, json.JSONDecodeError) as exc:
             raise OperatingPointError(f"{args.point}: cannot read the operating point ({exc})") from None
     res = certify_case(args.case, args.uncertain, args.band, args.objective, args.margin, point, args.policy,
-                       CertifyOptions(max_fraction=args.max_fraction))
+                       CertifyOptions(max_fraction=args.max_fraction), point_source=args.point or "point file")
     data = result_to_json(res)
     _print_summary(data)
     if args.out:

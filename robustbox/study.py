@@ -79,20 +79,30 @@ def point_from_json(net: Network, data: dict, source: str = "point file") -> Ope
     missing = [int(g) for g in on if int(g) not in gens]
     if missing:
         raise OperatingPointError(f"{source}: no entry for in-service generator rows {missing[:10]}")
-    pg = np.array([float(gens[int(g)]["p_mw"]) for g in on]) / net.base_mva
+    try:
+        pg = np.array([float(gens[int(g)]["p_mw"]) for g in on]) / net.base_mva
+    except (KeyError, TypeError, ValueError) as exc:
+        raise OperatingPointError(f"{source}: a generator's p_mw is missing or not a number ({exc!r})") from None
     if "buses" in data and all("q_mvar" in gens[int(g)] for g in on):
         idx = net.bus_index
         vm, va = np.zeros(net.n_bus), np.zeros(net.n_bus)
-        for b in data["buses"]:
-            if b["bus"] not in idx:
-                raise OperatingPointError(f"{source}: bus {b['bus']} is not in the network")
-            vm[idx[b["bus"]]], va[idx[b["bus"]]] = float(b["vm_pu"]), np.radians(float(b["va_deg"]))
-        qg = np.array([float(gens[int(g)]["q_mvar"]) for g in on]) / net.base_mva
+        try:
+            for k, b in enumerate(data["buses"]):
+                if b["bus"] not in idx:
+                    raise OperatingPointError(f"{source}: bus {b['bus']} is not in the network")
+                vm[idx[b["bus"]]], va[idx[b["bus"]]] = float(b["vm_pu"]), np.radians(float(b["va_deg"]))
+            qg = np.array([float(gens[int(g)]["q_mvar"]) for g in on]) / net.base_mva
+        except (KeyError, TypeError, ValueError) as exc:
+            raise OperatingPointError(f"{source}: bus entry {k} or a generator's q_mvar is missing or not a number "
+                                      f"({exc!r}); each bus needs \"bus\", \"vm_pu\", \"va_deg\"") from None
         return OperatingPoint(vm, va, pg, qg, data.get("objective"))
     work = net.copy()
     for k, g in enumerate(on):
         work.gen[g, PG] = pg[k] * net.base_mva
-        work.gen[g, VG] = float(gens[int(g)]["vm_pu"])
+        try:
+            work.gen[g, VG] = float(gens[int(g)]["vm_pu"])
+        except (KeyError, TypeError, ValueError):
+            raise OperatingPointError(f"{source}: generator row {int(g)} needs a numeric \"vm_pu\"") from None
     return _power_flow_point(work)
 
 
@@ -122,7 +132,8 @@ def _power_flow_point(net: Network) -> OperatingPoint:
 
 def certify_case(case: str | Path | Network, uncertain: str | Sequence[int] = "loads", band: float = 0.05,
                  objective: Objective = "uniform", margin: float = 0.1, point: dict | None = None,
-                 policy: str = "slack", options: CertifyOptions = CertifyOptions()) -> CaseCertificate:
+                 policy: str = "slack", options: CertifyOptions = CertifyOptions(),
+                 point_source: str = "point file") -> CaseCertificate:
     """Operating point (margin AC-OPF, or ``point``), then the certificate for the chosen uncertainty."""
     net = case if isinstance(case, Network) else read_case(case)
     injections, scenario = scenario_injections(net, uncertain, band)
@@ -131,7 +142,7 @@ def certify_case(case: str | Path | Network, uncertain: str | Sequence[int] = "l
         opf = solve_opf(net, margin)
         op = opf.point
     else:
-        op = point_from_json(net, point)
+        op = point_from_json(net, point, point_source)
     nsys = build_system(net, op, injections, policy)  # type: ignore[arg-type]
     cert = certify(nsys.system, nsys.point, objective, options=options)
     return CaseCertificate(net, nsys, cert, opf, band, scenario)

@@ -160,6 +160,8 @@ def _injections(model, config) -> tuple[list, list[tuple[float, float]]]:
     seen = set()
     bands = []
     for inj in injections:
+        if not hasattr(inj, "is_variable_type"):
+            raise ModelStructureError(f"injection {inj!r} is not a Pyomo component: give Vars or mutable Params")
         is_var = inj.is_variable_type()
         is_param = getattr(inj, "is_parameter_type", lambda: False)() and getattr(inj, "mutable", True)
         if not (is_var or is_param):

@@ -81,3 +81,12 @@ def test_report_slice_for_chosen_injections(tmp_path):
     assert (out / "slice.png").stat().st_size > 5000  # a blank figure is smaller (common practice, no source)
     assert main(["certify", str(demo_case_path()), "--uncertain", "renewables", "--report", str(out),
                  "--slice", "p[24],p[999]"]) == 2
+
+
+def test_bad_point_file_is_one_line(tmp_path, capsys):
+    point = tmp_path / "point.json"
+    gens = [{"index": g, "p_mw": 1.0, "q_mvar": 0.0, "vm_pu": 1.0} for g in range(4)]  # the demo grid's 4 units
+    point.write_text(json.dumps({"generators": gens, "buses": [{"bus": 1}]}))
+    code = main(["certify", str(demo_case_path()), "--point", str(point)])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and "point.json" in err and "vm_pu" in err and len(err.splitlines()) == 1

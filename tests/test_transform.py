@@ -229,6 +229,12 @@ def test_errors_are_named():
         xf.apply_to(m, injections=[m.wind3], band=0.1)
 
 
+def test_non_component_injection_is_named():
+    m = _three_bus_model()
+    with pytest.raises(ModelStructureError, match="not a Pyomo component"):
+        pyo.TransformationFactory(XF).apply_to(m, injections=[0.3], band=0.1)
+
+
 def test_free_recourse_variable_is_named():
     m = pyo.ConcreteModel()
     m.x = pyo.Var(initialize=1.0)
