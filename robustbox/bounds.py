@@ -118,29 +118,31 @@ class RemainderBound:
             self._splits.append(_SplitBound(qmap.eigen_split(anchor), k_matrix, abs_k, qmap.n_rows))
         if ("combined" in self.methods and qmap.n_rows
                 and qmap.n_rows * m * m <= options.combined_max_size):
-            self._combined = self._build_combined(k_matrix, abs_k)
+            self._combined = self._build_combined(k_matrix)
         if not ("plain" in self.methods or self._splits or self._combined is not None or not qmap.n_rows):
             raise CertificateError(f"none of the remainder methods {self.methods} applies here (the combined bound "
                              f"needs {qmap.n_rows * m * m} entries > combined_max_size; 'anchored' needs a "
                              "symmetry direction); add 'plain' or 'eigen'")
 
-    def _build_combined(self, k_matrix: np.ndarray, abs_k: np.ndarray) -> tuple[np.ndarray, ...]:
+    def _build_combined(self, k_matrix: np.ndarray) -> tuple[np.ndarray, ...]:
+        """fl(K_jᵀ Q_j K_j) for every row: signed diagonal parts and |off-diagonal| (m×m per row), and
+        γ_(2k+2) per row for its rounding error, |fl(KᵀQK) − KᵀQK| ≤ γ |K|ᵀ|Q||K| (Higham, Lemma 3.1,
+        applied twice), which over |w| ≤ ω adds at most γ δᵀ|Q_j|δ with δ = |K| ω."""
         qm, m = self.qmap, k_matrix.shape[1]
         pos_diag, neg_diag = np.zeros((qm.n_rows, m)), np.zeros((qm.n_rows, m))
         off = np.zeros((qm.n_rows, m, m))
-        for j, (var, mat) in enumerate(qm.local_blocks()):
-            if not len(var):
-                continue
-            kl = k_matrix[var]
-            full = kl.T @ mat @ kl
-            # |fl(KᵀQK) − KᵀQK| ≤ γ |K|ᵀ|Q||K|   (Higham, Lemma 3.1, applied twice)
-            err = inflate(gamma(2 * len(var) + 2) * (abs_k[var].T @ np.abs(mat) @ abs_k[var]), 1)
-            d, e = np.diag(full), np.diag(err)
-            pos_diag[j] = np.maximum(d, 0.0) + e
-            neg_diag[j] = np.maximum(-d, 0.0) + e
-            off[j] = np.abs(full) + err
-            np.fill_diagonal(off[j], 0.0)
-        return pos_diag, neg_diag, off
+        err_factor = np.zeros(qm.n_rows)
+        diag = np.arange(m)
+        for rows, var, mats in qm.local_blocks():
+            kl = k_matrix[var]  # (c, k, m)
+            full = kl.transpose(0, 2, 1) @ (mats @ kl)
+            d = full[:, diag, diag]
+            pos_diag[rows], neg_diag[rows] = np.maximum(d, 0.0), np.maximum(-d, 0.0)
+            np.abs(full, out=full)
+            full[:, diag, diag] = 0.0
+            off[rows] = full
+            err_factor[rows] = inflate(gamma(2 * var.shape[1] + 2), 1)
+        return pos_diag, neg_diag, off, err_factor
 
     def __call__(self, omega: np.ndarray, delta: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
         """(lo, hi): proven bounds of each row's quadratic part; ``delta`` = |K|ω if known."""
@@ -155,11 +157,14 @@ class RemainderBound:
             slo, shi = split(omega, delta)
             lo, hi = np.maximum(lo, slo), np.minimum(hi, shi)
         if self._combined is not None:
-            pos_diag, neg_diag, off = self._combined
+            pos_diag, neg_diag, off, err_factor = self._combined
             m = off.shape[1]
             om2 = inflate(omega * omega, 1)
             cross = inflate((off.reshape(-1, m) @ omega).reshape(-1, m) @ omega, m * m + 2)
-            chi = inflate(cross + pos_diag @ om2, m + 3)
-            clo = -inflate(cross + neg_diag @ om2, m + 3)
+            mag = inflate(np.bincount(qm.q_row, weights=np.abs(qm.q_val) * delta[qm.q_a] * delta[qm.q_b],
+                                      minlength=qm.n_rows), qm.max_terms + 2)
+            err = inflate(err_factor * mag, 1)
+            chi = inflate(cross + pos_diag @ om2 + err, m + 4)
+            clo = -inflate(cross + neg_diag @ om2 + err, m + 4)
             lo, hi = np.maximum(lo, clo), np.minimum(hi, chi)
         return lo, hi

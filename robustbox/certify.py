@@ -356,7 +356,7 @@ class _Conditions:
             growing = growing + 1 if rate >= 1.0 else 0
             if k > 5 and growing >= 6:
                 return False, new  # increments no longer shrink: no fixed point within reach
-            if k % 3 == 2 and rate < 0.95:
+            if k % 2 == 1 and rate < 0.995:
                 # geometric extrapolation of the remaining increments; accepted only if it is a valid ω
                 trial = new + (new - omega) * (1.05 * rate / (1.0 - rate))
                 t_terms = self.region_terms(trial)
@@ -385,7 +385,8 @@ def _fraction_in(lower: np.ndarray, upper: np.ndarray, wl: np.ndarray, wu: np.nd
 
 
 def _uniform(eng: _Conditions, opts: CertifyOptions, wl: np.ndarray, wu: np.ndarray) -> tuple[float, np.ndarray]:
-    """Largest t ≤ max_fraction with [−t wl, t wu] certified: bisection, then a scan of ω's scale."""
+    """Largest t ≤ max_fraction with [−t wl, t wu] certified: bisection on t (least ω at each t),
+    then a scan of ω's scale around the last least ω (:func:`_scan_scale`)."""
     def it(t: float, start: np.ndarray | None = None) -> np.ndarray | None:
         found, omega = eng.least_omega(-t * wl, t * wu, opts.inflation, opts.max_iterations, start)
         return omega if found else None
@@ -397,23 +398,31 @@ def _uniform(eng: _Conditions, opts: CertifyOptions, wl: np.ndarray, wu: np.ndar
         raise CertificateError(f"no certificate even for a zero box: {why.binding} fails (normalised margin "
                                f"{why.worst_margin:.3g}); the residual or Jacobian at the operating point leaves "
                                "no self-mapping region, or that limit has no room")
-    best_t, best_omega = 0.0, omega0
-    # the limits alone, linearised (remainders at ω0 only), bound t from above: bracket there
+    # the limits alone, linearised (remainders at ω0 only), bound t from above
     hi = min(opts.max_fraction, _max_t_at(eng, omega0, wl, wu, limits_only=True) * (1 + 1e-9))
     if hi <= 0:
         return 0.0, omega0
-    om = it(hi, best_omega)
+    om = it(hi, omega0)
     if om is not None:
         return hi, om
-    lo = hi * 1e-9
-    while hi > lo * (1 + opts.precision):
-        mid = np.sqrt(lo * hi)  # geometric bisection: the answer may be orders of magnitude below hi
-        om = it(mid, best_omega)
-        if om is None:
-            hi = mid
+    best_t, best_omega, t_fail = 0.0, omega0, hi
+    # bracket: steps of 8 down from hi, then geometric bisection (the answer may be far below hi)
+    while best_t == 0.0 and t_fail > hi * 1e-9:
+        om = it(t_fail / 8.0, omega0)
+        if om is not None:
+            best_t, best_omega = t_fail / 8.0, om
         else:
-            lo, best_t, best_omega = mid, mid, om
-    # method (a): scale the shape ω = τ ω*, closed-form t per τ
+            t_fail /= 8.0
+    if best_t == 0.0:
+        return 0.0, omega0
+    while t_fail > best_t * (1 + opts.precision):
+        mid = np.sqrt(best_t * t_fail)
+        om = it(mid, best_omega)  # an ω valid at a smaller t lies below the least one at mid: a valid start
+        if om is None:
+            t_fail = mid
+        else:
+            best_t, best_omega = mid, om
+    # the least ω's shape, scaled: ω = τ ω*, closed form in τ
     t_scan, om_scan = _scan_scale(eng, best_omega, wl, wu, opts.max_fraction)
     if t_scan > best_t:
         return t_scan, om_scan
@@ -423,16 +432,7 @@ def _uniform(eng: _Conditions, opts: CertifyOptions, wl: np.ndarray, wu: np.ndar
 def _max_t_at(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarray, limits_only: bool = False) -> float:
     """Largest t for which [−t wl, t wu] satisfies every condition at this fixed ω (floating point);
     with ``limits_only`` the self-mapping rows are left out."""
-    terms = eng.region_terms(omega)
-    s_up, s_lo, c_up, c_lo = eng.injection_terms(-wl, wu)
-    up, lo = eng.stack(terms["lim_up"], terms["lim_lo"])
-    n_mon = len(c_lo)
-    slack = np.concatenate([omega - terms["a_up"], omega - terms["a_lo"],
-                            eng.row_upper - up, lo[:n_mon] - eng.row_lower[:n_mon]])
-    coef = np.concatenate([s_up, s_lo, eng.stack_coefficients(c_up, c_lo), c_lo])
-    if limits_only:
-        m = len(s_up)
-        slack, coef = slack[2 * m:], coef[2 * m:]
+    slack, coef = _slack_rows(eng, omega, wl, wu, limits_only)
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
         if np.any(slack < 0):
             return -1.0
@@ -440,36 +440,60 @@ def _max_t_at(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarra
     return float(np.nanmin(ratio, initial=np.inf))
 
 
+def _slack_rows(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarray, limits_only: bool = False
+                ) -> tuple[np.ndarray, np.ndarray]:
+    """(slack, coef): at this ω the box [−t wl, t wu] meets every condition iff slack ≥ t·coef (floating point)."""
+    terms = eng.region_terms(omega)
+    s_up, s_lo, c_up, c_lo = eng.injection_terms(-wl, wu)
+    up, lo = eng.stack(terms["lim_up"], terms["lim_lo"])
+    n_mon = len(c_lo)
+    with np.errstate(invalid="ignore"):
+        slack = np.concatenate([omega - terms["a_up"], omega - terms["a_lo"],
+                                eng.row_upper - up, lo[:n_mon] - eng.row_lower[:n_mon]])
+    coef = np.concatenate([s_up, s_lo, eng.stack_coefficients(c_up, c_lo), c_lo])
+    if limits_only:
+        m = len(s_up)
+        slack, coef = slack[2 * m:], coef[2 * m:]
+    return slack, coef
+
+
 def _scan_scale(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarray,
                 cap: float) -> tuple[float, np.ndarray]:
-    """Golden-section search over τ for ω = τ ω*; the result is rechecked with proven bounds."""
-    seen: dict[float, float] = {}
+    """Largest t over ω = τ ω* (τ > 0); the result is rechecked with proven bounds.
 
-    def f(tau: float) -> float:
-        seen[tau] = _max_t_at(eng, tau * omega, wl, wu)
-        return seen[tau]
+    Every bound is a nonnegative quadratic form in ω plus linear and constant parts, so each row's
+    slack is a quadratic in τ: three evaluations (τ = 0, 1, 2) give it, and t(τ) = min_i slack_i(τ)/coef_i
+    is maximised on a grid of τ, then refined.  The proven recheck backs t off until it holds.
+    """
+    s0, coef = _slack_rows(eng, 0.0 * omega, wl, wu)
+    s1, _ = _slack_rows(eng, omega, wl, wu)
+    s2, _ = _slack_rows(eng, 2.0 * omega, wl, wu)
+    keep = np.isfinite(s0) & np.isfinite(s1) & np.isfinite(s2)
+    s0, s1, s2, coef = s0[keep], s1[keep], s2[keep], coef[keep]
+    c2 = 0.5 * (s2 - 2.0 * s1 + s0)
+    c1 = s1 - s0 - c2
+    pos = coef > 0
+    inv = np.where(pos, 1.0 / np.where(pos, coef, 1.0), 0.0)
 
-    a, b, g = 0.5, 4.0, (np.sqrt(5.0) - 1.0) / 2.0
-    x1, x2 = b - g * (b - a), a + g * (b - a)
-    f1, f2 = f(x1), f(x2)
-    f(1.0)
-    for _ in range(14):
-        if f1 >= f2:
-            b, x2, f2 = x2, x1, f1
-            x1 = b - g * (b - a)
-            f1 = f(x1)
-        else:
-            a, x1, f1 = x1, x2, f2
-            x2 = a + g * (b - a)
-            f2 = f(x2)
-    tau = max(seen, key=seen.get)
-    t = min(seen[tau], cap)
+    def t_of(taus: np.ndarray) -> np.ndarray:
+        sl = s0[:, None] + c1[:, None] * taus[None] + c2[:, None] * taus[None] ** 2
+        with np.errstate(over="ignore", invalid="ignore"):
+            t = np.where(pos[:, None], sl * inv[:, None], np.where(sl >= 0, np.inf, -np.inf)).min(axis=0)
+        return np.minimum(t, cap)
+
+    taus = np.geomspace(1e-2, 1e2, 121)
+    vals = t_of(taus)
+    i = int(np.argmax(vals))
+    fine = np.linspace(taus[max(i - 1, 0)], taus[min(i + 1, len(taus) - 1)], 41)
+    fvals = t_of(fine)
+    j = int(np.argmax(fvals))
+    tau, t = float(fine[j]), float(fvals[j])
     for _ in range(60):
         if t <= 0:
             break
         if eng.check(-t * wl, t * wu, tau * omega).holds:
             return t, tau * omega
-        t *= 1.0 - 4e-6
+        t *= 1.0 - 1e-5
     return 0.0, omega
 
 

@@ -248,21 +248,35 @@ class QuadraticMap:
         lo = -inflate(np.bincount(self.q_row, weights=neg, minlength=self.n_rows), n)
         return lo, hi
 
-    def local_blocks(self) -> list[tuple[np.ndarray, np.ndarray]]:
-        """Per row: (variable indices, dense symmetric matrix Q_j on them)."""
-        order = np.argsort(self.q_row, kind="stable")
-        starts = np.searchsorted(self.q_row[order], np.arange(self.n_rows + 1))
-        blocks = []
-        for j in range(self.n_rows):
-            idx = order[starts[j]:starts[j + 1]]
-            a, b, v = self.q_a[idx], self.q_b[idx], self.q_val[idx]
-            var = np.unique(np.concatenate([a, b]))
-            ia, ib = np.searchsorted(var, a), np.searchsorted(var, b)
-            mat = np.zeros((len(var), len(var)))
-            np.add.at(mat, (ia, ib), np.where(a == b, v, v / 2.0))
-            np.add.at(mat, (ib, ia), np.where(a == b, 0.0, v / 2.0))
-            blocks.append((var, mat))
-        return blocks
+    def local_blocks(self) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        """Rows grouped by the size k of their local form: (rows (c,), variables (c, k), Q_j (c, k, k)).
+
+        Q_j is the dense symmetric matrix of row j on its own variables (zᵀQ_j z is the row's quadratic part).
+        """
+        if "blocks" in self._cache:
+            return self._cache["blocks"]
+        n = max(self.n_vars, 1)
+        keys = np.unique(np.concatenate([self.q_row * n + self.q_a, self.q_row * n + self.q_b]))
+        key_row = keys // n
+        count = np.bincount(key_row, minlength=self.n_rows)
+        start = np.concatenate([[0], np.cumsum(count)])
+        ia = np.searchsorted(keys, self.q_row * n + self.q_a) - start[self.q_row]
+        ib = np.searchsorted(keys, self.q_row * n + self.q_b) - start[self.q_row]
+        diag = self.q_a == self.q_b
+        groups = []
+        for k in np.unique(count[count > 0]):
+            rows = np.flatnonzero(count == k)
+            slot = np.full(self.n_rows, -1)
+            slot[rows] = np.arange(len(rows))
+            var = (keys[start[rows][:, None] + np.arange(k)] % n).astype(np.int64)
+            mats = np.zeros((len(rows), k, k))
+            sel = slot[self.q_row] >= 0
+            c, a, b, v, d = slot[self.q_row[sel]], ia[sel], ib[sel], self.q_val[sel], diag[sel]
+            np.add.at(mats, (c, a, b), np.where(d, v, v / 2.0))
+            np.add.at(mats, (c, b, a), np.where(d, 0.0, v / 2.0))
+            groups.append((rows, var, mats))
+        self._cache["blocks"] = groups
+        return groups
 
     def eigen_split(self, anchor: np.ndarray | None = None, tol: float = 1e-13) -> EigenSplit:
         """Split of each local Q_j with a proven residual bound.
@@ -277,31 +291,27 @@ class QuadraticMap:
         the part of a displacement along u apart; with u a symmetry direction
         of the row (a rotation of all voltage angles), the large terms of
         opposite sign cancel exactly instead of being bounded separately.
+        Directions with |λ_i| ≤ tol·max|λ| are dropped into the residual.
         """
         key = ("eigen", None if anchor is None else anchor.tobytes())
         if key in self._cache:
             return self._cache[key]
-        blocks = self.local_blocks()
-        by_size: dict[int, list[int]] = {}
-        for j, (var, _) in enumerate(blocks):
-            if len(var):
-                by_size.setdefault(len(var), []).append(j)
         d_rows, d_cols, d_vals, lam_all, owner = [], [], [], [], []
         r_row, r_a, r_b, r_val = [], [], [], []
         u_rows, u_cols, u_vals, c_vals, quu_all = [], [], [], [], np.zeros(self.n_rows)
         n_dir = 0
-        for k, js in by_size.items():
-            mats = np.stack([blocks[j][1] for j in js])
-            u = np.zeros((len(js), k))
+        for js, var, mats in self.local_blocks():
+            c_n, k = var.shape
+            u = np.zeros((c_n, k))
             if anchor is not None:
-                u = np.stack([anchor[blocks[j][0]] for j in js])
+                u = anchor[var]
                 norm = np.linalg.norm(u, axis=1)
                 u = np.where(norm[:, None] > 0, u / np.where(norm > 0, norm, 1.0)[:, None], 0.0)
             qu = np.einsum("cij,cj->ci", mats, u)
             quu = np.einsum("ci,ci->c", u, qu)
             cross = qu - quu[:, None] * u
             proj = np.eye(k)[None] - np.einsum("ci,cj->cij", u, u)
-            inner = np.einsum("cij,cjk,ckl->cil", proj, mats, proj)
+            inner = proj @ mats @ proj
             lam, vec = np.linalg.eigh(0.5 * (inner + inner.transpose(0, 2, 1)))
             uu = np.einsum("ci,cj->cij", u, u)
             uc = np.einsum("ci,cj->cij", u, cross)
@@ -309,37 +319,35 @@ class QuadraticMap:
             mag = (np.einsum("cik,ck,cjk->cij", np.abs(vec), np.abs(lam), np.abs(vec)) + np.abs(mats)
                    + np.abs(quu)[:, None, None] * np.abs(uu) + 2 * np.abs(uc) + np.abs(uc.transpose(0, 2, 1)))
             res = np.abs(mats - recon) + gamma(4 * k + 8) * mag
-            for c, j in enumerate(js):
-                var = blocks[j][0]
-                if anchor is not None and np.any(u[c]):
-                    u_rows.append(np.full(k, j))
-                    u_cols.append(var)
-                    u_vals.append(u[c])
-                    c_vals.append(cross[c])
-                    quu_all[j] = quu[c]
-                scale = np.abs(lam[c]).max(initial=0.0)
-                for i in range(k):
-                    if abs(lam[c, i]) <= tol * scale:
-                        # dropped direction: its whole contribution goes to the residual
-                        res[c] += np.abs(lam[c, i]) * np.outer(np.abs(vec[c, :, i]), np.abs(vec[c, :, i])) * (1 + 4 * gamma(k + 2))
-                        continue
-                    d_rows.append(np.full(k, n_dir))
-                    d_cols.append(var)
-                    d_vals.append(vec[c, :, i])
-                    lam_all.append(lam[c, i])
-                    owner.append(j)
-                    n_dir += 1
-                ia, ib = np.triu_indices(k)
-                r_row.append(np.full(len(ia), j))
-                r_a.append(var[ia])
-                r_b.append(var[ib])
-                r_val.append(res[c][ia, ib])
+            keep = np.abs(lam) > tol * np.abs(lam).max(axis=1, initial=0.0)[:, None]
+            # a dropped direction's whole contribution goes to the residual
+            dropped = np.where(keep, 0.0, np.abs(lam)) * (1 + 4 * gamma(k + 2))
+            res += np.einsum("cik,ck,cjk->cij", np.abs(vec), dropped, np.abs(vec))
+            has = np.any(u != 0, axis=1)
+            if anchor is not None and np.any(has):
+                u_rows.append(np.repeat(js[has], k))
+                u_cols.append(var[has].ravel())
+                u_vals.append(u[has].ravel())
+                c_vals.append(cross[has].ravel())
+                quu_all[js[has]] = quu[has]
+            cs, ks = np.nonzero(keep)
+            d_rows.append(np.repeat(n_dir + np.arange(len(cs)), k))
+            d_cols.append(var[cs].ravel())
+            d_vals.append(vec[cs, :, ks].ravel())
+            lam_all.append(lam[cs, ks])
+            owner.append(js[cs])
+            n_dir += len(cs)
+            ia, ib = np.triu_indices(k)
+            r_row.append(np.repeat(js, len(ia)))
+            r_a.append(var[:, ia].ravel())
+            r_b.append(var[:, ib].ravel())
+            r_val.append(res[:, ia, ib].ravel())
         cat = (lambda xs, dt=float: np.concatenate(xs).astype(dt) if xs else np.zeros(0, dtype=dt))
         directions = sp.csr_matrix((cat(d_vals), (cat(d_rows, np.int64), cat(d_cols, np.int64))),
                                    shape=(n_dir, self.n_vars))
         shape = (self.n_rows, self.n_vars)
         ui, uj = cat(u_rows, np.int64), cat(u_cols, np.int64)
-        split = EigenSplit(directions, np.asarray(lam_all, dtype=float), np.asarray(owner, dtype=np.int64),
+        split = EigenSplit(directions, cat(lam_all), cat(owner, np.int64),
                            cat(r_row, np.int64), cat(r_a, np.int64), cat(r_b, np.int64), cat(r_val),
                            sp.csr_matrix((cat(u_vals), (ui, uj)), shape=shape),
                            sp.csr_matrix((cat(c_vals), (ui, uj)), shape=shape), quu_all)
