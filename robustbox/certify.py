@@ -29,7 +29,7 @@ from scipy.optimize import linprog
 from .bounds import RemainderBound, RemainderOptions
 from .errors import CertificateError, OperatingPointError
 from .quadratic import QuadraticSystem
-from .rounding import gamma, inflate, matvec_upper, sum_error
+from .rounding import compact_upper, gamma, inflate, matvec_upper, sum_error
 
 Objective = Literal["uniform", "hosting", "widths", "volume", "verify"]
 
@@ -149,7 +149,7 @@ def _recourse_matrix(jac: sp.csr_matrix, names: tuple[str, ...], limit: float) -
         raise CertificateError(f"the Jacobian is ill-conditioned at the operating point (1-norm condition "
                                f"estimate {cond:.3g} > {limit:.3g}); equations involved: "
                                + ", ".join(names[i] for i in worst))
-    return k, policy
+    return np.ascontiguousarray(k), policy
 
 
 def _weak_rows(jac: sp.csr_matrix, names: tuple[str, ...]) -> str:
@@ -169,7 +169,7 @@ class _Conditions:
         self.system, self.point, self.k, self.policy = system, point, k, policy
         eq, lim, unc = system.equations, system.limits, system.uncertain
         m = eq.n_rows
-        self.abs_k = inflate(np.abs(k), 0)
+        self.abs_k = np.ascontiguousarray(inflate(np.abs(k), 0))
         jac, jac_err = eq.jacobian_with_error(point)
         jk = np.asarray(jac @ k)
         inner = int(np.diff(jac.indptr).max(initial=1))
@@ -191,11 +191,18 @@ class _Conditions:
         ginner = int(np.diff(grad.indptr).max(initial=1))
         self.lin_err = sp.csr_matrix(grad_err + abs(grad) * inflate(gamma(ginner + 1), 0))
         self.g_pos, self.g_neg = np.maximum(g, 0.0), np.maximum(-g, 0.0)
-        c = np.asarray(e.T @ g.T).T + unc.limit_map.toarray() if unc.size else np.zeros((lim.n_rows, 0))
-        einner = int(np.diff(e.tocsc().indptr).max(initial=1)) if unc.size else 1
-        self.c_err = inflate(gamma(einner + 2) * (np.abs(g) @ abs(e)) + 0.0, 1) if unc.size else c
-        # coefficient bounds of the injections in the limits: C⁺ + ΔC and C⁻ + ΔC
-        self.c_up, self.c_dn = np.maximum(c, 0.0) + self.c_err, np.maximum(-c, 0.0) + self.c_err
+        # coefficient bounds of the injections in the limits, C = G E + A: C⁺ + ΔC and C⁻ + ΔC
+        if unc.size:
+            c = np.asarray(e.T @ g.T).T
+            del g
+            c += unc.limit_map.toarray()
+            einner = int(np.diff(e.tocsc().indptr).max(initial=1))
+            c_err = np.asarray(self.g_pos @ abs(e)) + np.asarray(self.g_neg @ abs(e))  # |G| |E|
+            c_err = inflate(gamma(einner + 2) * c_err, 1)
+        else:
+            c = c_err = np.zeros((lim.n_rows, 0))
+        self.c_up = compact_upper(inflate(np.maximum(c, 0.0) + c_err, 0))  # inflate: the sum's own rounding
+        self.c_dn = compact_upper(inflate(np.maximum(-c, 0.0) + c_err, 0))
         self.lim_bound = RemainderBound(lim, k, self.abs_k, remainder.for_limits(), anchor)
         n_der = 0 if system.derived is None else system.derived.shape[0]
         w = system.derived if n_der else sp.csr_matrix((0, lim.n_rows))

@@ -220,3 +220,50 @@ def test_mismatched_dimensions_are_rejected():
                         system.uncertain, system.variable_names)
     with pytest.raises(QuadraticSystemError, match="non-finite quadratic coefficient"):
         QuadraticMap.from_terms(1, ["f"], ([0], [0], [0], [np.inf]), ([], [], []))
+
+
+def test_single_precision_storage_gives_upper_bounds_in_exact_arithmetic():
+    # reference: exact rational arithmetic (Python's standard-library `fractions`), entries spanning
+    # many orders of magnitude, including values below the single-precision normal range
+    from fractions import Fraction
+
+    import robustbox.rounding as rounding_mod
+    from robustbox.bounds import _projection
+    from robustbox.rounding import matvec_upper, round_up_32
+
+    rng = np.random.default_rng(3)
+    a = np.abs(rng.normal(size=(6, 40))) * 10.0 ** rng.integers(-45, 30, size=(6, 40))
+    x = np.abs(rng.normal(size=40)) * 10.0 ** rng.integers(-20, 5, size=40)
+    a32 = round_up_32(a)
+    assert a32.dtype == np.float32
+    assert all(Fraction(float(u)) >= Fraction(float(v)) for u, v in zip(a32.ravel(), a.ravel()))
+    bound = matvec_upper(a32, x)
+    for i in range(a.shape[0]):
+        exact = sum(Fraction(float(a[i, j])) * Fraction(float(x[j])) for j in range(a.shape[1]))
+        assert Fraction(float(bound[i])) >= exact
+    d = sp.csr_matrix(rng.normal(size=(5, 7)) * (rng.random((5, 7)) < 0.5))
+    k = rng.normal(size=(7, 4))
+    for compact in (False, True):
+        old, rounding_mod.COMPACT_ENTRIES = rounding_mod.COMPACT_ENTRIES, (0 if compact else 10**9)
+        try:
+            proj = _projection(d, k, np.abs(k))
+        finally:
+            rounding_mod.COMPACT_ENTRIES = old
+        assert proj.dtype == (np.float32 if compact else np.float64)
+        dd = d.toarray()
+        for i, j in itertools.product(range(5), range(4)):
+            exact = abs(sum(Fraction(float(dd[i, r])) * Fraction(float(k[r, j])) for r in range(7)))
+            assert Fraction(float(proj[i, j])) >= exact
+
+
+@pytest.mark.parametrize("seed", [11, 12, 13])
+def test_certified_boxes_hold_with_single_precision_storage(seed, monkeypatch):
+    # every stored upper-bound matrix goes to single precision (the path taken on large networks)
+    import robustbox.rounding as rounding_mod
+
+    monkeypatch.setattr(rounding_mod, "COMPACT_ENTRIES", 0)
+    system, z0, dense = _random_system(seed, 4, 3, extras=True)
+    cert = certify(system, z0)
+    assert cert.status == "certified" and cert.certified_fraction > 0
+    assert cert._engine.c_up.dtype == np.float32
+    _check_box(cert, system, z0, dense, _box_points(cert.lower, cert.upper, np.random.default_rng(seed)))
