@@ -15,7 +15,7 @@ implemented; :class:`RemainderBound` takes the tightest valid one row by row.
               with α = u_jᵀd, so terms that cancel along u_j are not bounded apart.
 ``combined``  combine before taking absolute values: M_j = Kᵀ Q_j K and
               wᵀ M_j w ≤ Σ M_kk⁺ ω_k² + Σ_(k≠l) |M_kl| ω_k ω_l.  Dense m×m per
-              row, so used only while rows·m² ≤ combined_max_size (25 million entries, 200 MB, by default).
+              row, so used only while rows·m² ≤ combined_max_size (5 million entries, 40 MB, by default).
 
 All are evaluated with proven floating-point error bounds.
 """
@@ -50,7 +50,7 @@ class RemainderOptions:
     """
 
     methods: tuple[str, ...] = METHODS
-    combined_max_size: int = 25_000_000
+    combined_max_size: int = 5_000_000
     combined_for_limits: bool = False
     eigen_for_limits: bool = False
 
