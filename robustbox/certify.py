@@ -55,7 +55,7 @@ class CertifyOptions:
     remainder: RemainderOptions = RemainderOptions()
     max_fraction: float = 1.0
     inflation: float = 1e-3
-    max_iterations: int = 60
+    max_iterations: int = 30
     precision: float = 1e-3
     residual_tolerance: float = 1e-6
     condition_limit: float = 1e12
