@@ -258,7 +258,8 @@ def main() -> None:
     ap.add_argument("--out", default=str(OUT))
     ap.add_argument("--scenarios", default="AB", help="A, B or AB")
     ap.add_argument("--policy", choices=["slack", "distributed"], default="slack")
-    ap.add_argument("--append", action="store_true", help="add to the records already in --out")
+    ap.add_argument("--append", action="store_true",
+                    help="add to the records already in --out (replacing those of the same case, scenario, policy)")
     args = ap.parse_args()
     pub = published()
     names = args.cases or sorted((n for n, (b, _) in pub.items() if b <= args.max_buses), key=lambda n: (pub[n][0], n))
@@ -269,6 +270,9 @@ def main() -> None:
     print(f"{'case':<30}{'sc':>2}{'s':>5}{'marg':>6}{'cost+':>9}{'cert t':>11}{'true t<=':>11}{'ratio':>7}"
           f"{'axis':>7}{'lin t':>11}{'viol':>7}{'naive':>9}{'cert s':>8}{'/OPF':>7}{'MB':>8}{'bad':>5}  binding")
     records = json.loads(Path(args.out).read_text()) if args.append and Path(args.out).exists() else []
+    # a rerun replaces the earlier records of the same case, scenario and policy
+    records = [r for r in records if not (r["case"] in names and r.get("policy", args.policy) == args.policy
+                                          and r.get("scenario", "") in (*args.scenarios, ""))]
     for name in names:
         try:
             records.extend(run_case(name, pub, client, args.samples, args.steps, args.scenarios, args.policy))

@@ -651,7 +651,7 @@ def _recentered(system: QuadraticSystem, point: np.ndarray, opts: CertifyOptions
         if not found:
             return None
         z_prev = z_c
-        return eng, omega
+        return (z_c, k, policy), omega  # the engine itself is rebuilt once at the end (memory)
 
     # doubling from the uncentred t (a centred box reaches about twice as far), then geometric bisection
     lo, hi = t_floor, t_cap
@@ -668,7 +668,10 @@ def _recentered(system: QuadraticSystem, point: np.ndarray, opts: CertifyOptions
             hi, doubling = mid, False
         else:
             lo, best = mid, (mid, *got)
-    return best
+    if best is None:
+        return None
+    t, (z_c, k, policy), omega = best
+    return t, _Conditions(system, z_c, k, policy, opts.remainder), omega
 
 
 # ---------------------------------------------------------------------- entry
@@ -729,13 +732,16 @@ def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "
         t, omega = _uniform(eng, first, wl, wu)
         if recenter and t < options.max_fraction:
             t_cap = min(options.max_fraction, _max_t_at(eng, omega, wl, wu, limits_only=True) * 4.0)
+            del eng  # one engine at a time (each holds dense rows × m bounds): rebuilt below if needed
             moved = _recentered(system, point, options, wl, wu, t, max(t_cap, t))
             if moved is not None and moved[0] > t:
                 t, eng, omega = moved
                 point = eng.point
                 policy = eng.policy + "; operating point moved to the solution at the box centre"
-            elif first is not options:
-                t, omega = _uniform(eng, options, wl, wu)  # the given point stays: full precision
+            else:
+                eng = _Conditions(system, point, k, policy, options.remainder)
+                if first is not options:
+                    t, omega = _uniform(eng, options, wl, wu)  # the given point stays: full precision
         lower, upper = -t * wl, t * wu
     elif objective in ("hosting", "widths", "volume"):
         t, omega_u = _uniform(eng, options, wl, wu)
