@@ -50,6 +50,17 @@ OUT = Path(__file__).resolve().parent / "results" / "conservativeness.json"
 MARGINS = (0.1, 0.05, 0.02, 0.01)
 
 
+def _commit() -> str | None:
+    """The checked-out commit of this repository (None outside a git checkout)."""
+    import subprocess
+
+    try:
+        return subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=Path(__file__).parent, capture_output=True,
+                              text=True, check=True).stdout.strip()
+    except (OSError, subprocess.CalledProcessError):
+        return None
+
+
 def published() -> dict[str, tuple[int, float]]:
     rows = csv.DictReader(line for line in (DATA / "baseline_ac_objective.csv").read_text().splitlines()
                           if not line.startswith("#"))
@@ -183,6 +194,7 @@ def run_case(name: str, pub: dict, client, samples: int, steps: int, scenarios: 
             records.append({"case": name, "buses": net.n_bus, "scenario": scen, "error": "no uncertain injection"})
             continue
         rec = {"case": name, "buses": net.n_bus, "scenario": scen, "policy": policy, "uncertain": len(inj),
+               "commit": _commit(),
                "margin": opf.margin, "margin_gen": opf.margin if margin_gen is None else margin_gen,
                "opf_cost": opf.objective_per_h, "published_ac": ref, "plain_opf_cost": plain.objective_per_h,
                "cost_increase_pct": 100 * (opf.objective_per_h - ref) / ref, "opf_time_s": opf_time}

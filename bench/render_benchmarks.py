@@ -121,7 +121,11 @@ def main() -> None:
              "(sampling can miss infeasible points), so the ratio certified/true is a lower bound on the real "
              "ratio.", "",
              "Results depend on the model data; they are not a substitute for grid codes, protection studies or "
-             "licensed engineering judgment.", ""] + _targets(recs)
+             "licensed engineering judgment.", ""]
+    prov = RESULTS.parent / "provenance.txt"
+    if prov.exists():
+        lines += [" ".join(prov.read_text().split()), ""]
+    lines += _targets(recs)
     sections = [("A", "slack"), ("B", "slack"), ("B", "distributed"), ("A", "distributed")]
     for scen, policy in sections:
         rs = [r for r in recs if r["scenario"] == scen and r.get("policy", "slack") == policy]
