@@ -15,8 +15,8 @@ this prints side by side, in one run:
   - naive baselines: the linearised box (uncertified; share of its vertices that violate limits) and the
     linearised box shrunk by the worst-case linearisation error over the whole voltage region;
   - certificate wall time vs one plain AC-OPF solve with our Ipopt bridge (each the better of two runs),
-    peak memory of the certificate (traced in a third run) and of the whole process (resident set; run a large
-    case alone, e.g. --cases pglib_opf_case2000_goc --append, to read it as that case's peak);
+    peak memory of the certificate (traced in a third run; bench/certificate_memory.py measures the resident
+    peak of a certificate alone);
   - the binding limit class.
 The recourse policy is the slack bus (--policy distributed: generators share the balance).
 Results: bench/results/conservativeness.json (one record per case and scenario); render with
@@ -29,7 +29,6 @@ from __future__ import annotations
 import argparse
 import csv
 import json
-import resource
 import time
 import tracemalloc
 from pathlib import Path
@@ -219,9 +218,7 @@ def run_case(name: str, pub: dict, client, samples: int, steps: int, scenarios: 
         rec["cert_peak_mb"] = tracemalloc.get_traced_memory()[1] / 2**20
         tracemalloc.stop()
         rec.update({"certified_t": t_cert, "binding": binding, "binding_class": binding_class(binding),
-                    "time_ratio": rec["cert_time_s"] / opf_time,
-                    # the whole benchmark process so far (OPF included): a case's own peak when run alone
-                    "process_peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024})
+                    "time_ratio": rec["cert_time_s"] / opf_time})
         if cert is not None and t_cert > 0:
             val = validate_box(net, op, inj, cert.lower, cert.upper, policy, part, samples=samples, max_vertices=12,
                                client=client)

@@ -38,9 +38,12 @@ def _targets(recs: list[dict]) -> list[str]:
            f"| zero violations when validating certified boxes | {viol} violations in {pts} power flows "
            f"({len([r for r in recs if r.get('validation_points')])} boxes) | {'yes' if viol == 0 else 'NO'} |"]
     for scen, goal in (("A", 0.5), ("B", 0.7)):
-        ratios = [r["ratio"] for r in slack if r["scenario"] == scen and np.isfinite(r.get("ratio", np.nan))]
-        med = float(np.median(ratios)) if ratios else float("nan")
-        out.append(f"| median certified/true t ≥ {goal} in scenario {scen} | {_fmt(med)} over {len(ratios)} cases "
+        ok = [r for r in slack if r["scenario"] == scen and np.isfinite(r.get("ratio", np.nan))]
+        med = float(np.median([r["ratio"] for r in ok])) if ok else float("nan")
+        small = [r["ratio"] for r in ok if r["buses"] <= 300]
+        part = (f" (the {len(small)} cases ≤ 300 buses: {_fmt(float(np.median(small)))})"
+                if small and len(small) < len(ok) else "")
+        out.append(f"| median certified/true t ≥ {goal} in scenario {scen} | {_fmt(med)} over {len(ok)} cases{part} "
                    f"| {'yes' if med >= goal else 'NO'} |")
     for cap, goal in ((300, 0.25), (2000, 1.0)):
         rs = [r for r in slack if r["buses"] <= cap]
@@ -52,11 +55,25 @@ def _targets(recs: list[dict]) -> list[str]:
         out.append(f"| certificate time ≤ {goal} × one AC-OPF, every case ≤ {cap} buses | worst "
                    f"{_fmt(worst['time_ratio'], '.2f')} × ({worst['case'].replace('pglib_opf_', '')} "
                    f"{worst['scenario']}); {med} | {'yes' if worst['time_ratio'] <= goal else 'NO'} |")
-    mem = max((max(r.get("cert_peak_mb", 0), r.get("process_peak_rss_mb", 0) if r["buses"] > 1000 else 0), r["case"])
-              for r in recs if r.get("cert_peak_mb") is not None)
-    out += [f"| memory under 8 GB | largest {mem[0] / 1024:.1f} GB ({mem[1].replace('pglib_opf_', '')}; traced "
-            "certificate peak, and for cases over 1000 buses the whole process's resident peak, OPF included) "
-            f"| {'yes' if mem[0] < 8192 else 'NO'} |", ""]
+    mem_file = RESULTS.parent / "certificate_memory.json"
+    alone = json.loads(mem_file.read_text()) if mem_file.exists() else []
+    traced = max((r.get("cert_peak_mb", 0), r["case"], r["scenario"]) for r in recs if r.get("cert_peak_mb") is not None)
+    text = (f"largest traced certificate peak {traced[0] / 1024:.1f} GB ({traced[1].replace('pglib_opf_', '')} "
+            f"{traced[2]})")
+    worst = traced[0]
+    if alone:
+        big = max(alone, key=lambda r: r["peak_rss_mb"])
+        worst = max(worst, big["peak_rss_mb"])
+        text += (f"; a process that only reads the case and the point and certifies peaks at "
+                 f"{big['peak_rss_mb'] / 1024:.1f} GB ({big['case'].replace('pglib_opf_', '')} {big['scenario']}; "
+                 "`bench/certificate_memory.py`)")
+    out += [f"| memory under 8 GB | {text} | {'yes' if worst < 8192 else 'NO'} |", ""]
+    if alone:
+        out += ["Certificate alone in its own process (`python bench/certificate_memory.py`, margin 0.1):", "",
+                "| case | scenario | certified t | cert s | peak resident MB |", "|---|---|---|---|---|"]
+        out += [f"| {r['case'].replace('pglib_opf_', '')} | {r['scenario']} | {_fmt(r['certified_t'], '.4g')} "
+                f"| {_fmt(r['cert_time_s'], '.1f')} | {_fmt(r['peak_rss_mb'], '.0f')} |" for r in alone]
+        out.append("")
     return out
 
 
@@ -151,8 +168,7 @@ def main() -> None:
                 f"| {_fmt(r['certified_t'], '.4g')} | {_fmt(r['true_t_upper'], '.4g')} | {_fmt(r['ratio'], '.3f')} "
                 f"| {_fmt(r['axis_ratio_median'], '.2f')} / {_fmt(r['axis_ratio_min'], '.2f')} | {_fmt(r['linear_t'], '.4g')} "
                 f"| {_fmt(r.get('linear_box_violating_share'), '.2f')} | {'empty' if r['naive_shrunk_empty'] else _fmt(r['naive_shrunk_t'])} "
-                f"| {_fmt(r['cert_time_s'], '.2f')} | {_fmt(r['time_ratio'], '.2f')} | {_fmt(r['cert_peak_mb'], '.0f')}"
-                f"{' / ' + _fmt(r['process_peak_rss_mb'], '.0f') if r['buses'] > 1000 and 'process_peak_rss_mb' in r else ''} "
+                f"| {_fmt(r['cert_time_s'], '.2f')} | {_fmt(r['time_ratio'], '.2f')} | {_fmt(r['cert_peak_mb'], '.0f')} "
                 f"| {r['binding_class']} |")
         lines.append("")
     if errors:
@@ -165,8 +181,8 @@ def main() -> None:
               "that violate a limit; *naive shrunk* — that box after shrinking every limit by the worst-case "
               "linearisation error over the whole voltage region; *cert/OPF time* — certificate wall time over one "
               "plain AC-OPF solve with our Ipopt bridge, each the better of two runs; *peak MB* — peak memory traced "
-              "during the certificate (for cases over 1000 buses also the benchmark process's resident peak, "
-              "OPF included, measured with the case run alone).", ""]
+              "during the certificate (numpy allocations; the resident peak of a certificate alone is in the "
+              "targets section).", ""]
     DOC.write_text("\n".join(lines), encoding="utf-8")
     print(f"wrote {DOC}")
 
