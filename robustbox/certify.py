@@ -118,6 +118,48 @@ class Certificate:
             raise CertificateError("this certificate carries no system to recheck against")
         return self._engine.check(self.lower, self.upper, self.omega)
 
+    def limit_response(self, rows: np.ndarray) -> LimitResponse:
+        """How the monitored rows ``rows`` move with the injections over the certified box.
+
+        For every p in [lower, upper] the certified state z(p) satisfies, row by row,
+            h(z(p)) + A p  ∈  value + gain p + [−below, above]
+        (units of the rows).  ``gain`` is the first-order response C = ∇h K E + A at the certificate's
+        point (the recentred one, if the point was moved), ``value`` = h there; ``below``/``above``
+        are the same proven bounds the limit conditions use (remainder, linearisation and rounding
+        errors, plus the rounding of C itself over the box), so they are upper bounds in exact arithmetic.
+        """
+        if self._engine is None or self.status != "certified":
+            raise CertificateError("only a certified box with its system carries a response")
+        eng = self._engine
+        rows = np.asarray(rows, dtype=np.int64)
+        terms = eng.region_terms(self.omega)
+        h_bar = eng.h_bar[rows]
+        up, lo = terms["lim_up"][rows], terms["lim_lo"][rows]
+        gain, gain_err = eng.injection_coefficients(rows)
+        reach = np.maximum(self.upper, -self.lower)
+        spread = matvec_upper(gain_err, reach) if gain.shape[1] else np.zeros(len(rows))
+        above = (up - h_bar) + spread
+        above = above + sum_error(up, h_bar, spread)
+        below = (h_bar - lo) + spread
+        below = below + sum_error(lo, h_bar, spread)
+        names = tuple(eng.names_lim[int(r)] for r in rows)
+        return LimitResponse(names, h_bar.copy(), gain, np.maximum(below, 0.0), np.maximum(above, 0.0))
+
+
+@dataclass(frozen=True, eq=False)
+class LimitResponse:
+    """Certified response of monitored quantities: h(z(p)) + A p ∈ value + gain p + [−below, above].
+
+    Units are those of the rows; p is the injection deviation from the system's nominal values, for
+    every p inside the certificate's box.
+    """
+
+    names: tuple[str, ...]
+    value: np.ndarray
+    gain: np.ndarray
+    below: np.ndarray
+    above: np.ndarray
+
 
 # --------------------------------------------------------------------- policy
 def _recourse_matrix(jac: sp.csr_matrix, names: tuple[str, ...], limit: float) -> tuple[np.ndarray, str]:
@@ -191,16 +233,9 @@ class _Conditions:
         ginner = int(np.diff(grad.indptr).max(initial=1))
         self.lin_err = sp.csr_matrix(grad_err + abs(grad) * inflate(gamma(ginner + 1), 0))
         self.g_pos, self.g_neg = np.maximum(g, 0.0), np.maximum(-g, 0.0)
+        del g
         # coefficient bounds of the injections in the limits, C = G E + A: C⁺ + ΔC and C⁻ + ΔC
-        if unc.size:
-            c = np.asarray(e.T @ g.T).T
-            del g
-            c += unc.limit_map.toarray()
-            einner = int(np.diff(e.tocsc().indptr).max(initial=1))
-            c_err = np.asarray(self.g_pos @ abs(e)) + np.asarray(self.g_neg @ abs(e))  # |G| |E|
-            c_err = inflate(gamma(einner + 2) * c_err, 1)
-        else:
-            c = c_err = np.zeros((lim.n_rows, 0))
+        c, c_err = self.injection_coefficients(slice(None))
         self.c_up = compact_upper(inflate(np.maximum(c, 0.0) + c_err, 0))  # inflate: the sum's own rounding
         self.c_dn = compact_upper(inflate(np.maximum(-c, 0.0) + c_err, 0))
         self.lim_bound = RemainderBound(lim, k, self.abs_k, remainder.for_limits(), anchor)
@@ -215,6 +250,19 @@ class _Conditions:
                                   np.maximum(np.abs(np.where(np.isfinite(self.row_upper), self.row_upper, 0.0)), 1e-9))
         self.names_eq = eq.names
         self.names_lim = tuple(lim.names) + tuple(system.derived_names)
+
+    def injection_coefficients(self, rows: slice | np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(C, ΔC) for the given monitored rows: C = fl(G E) + A, |G E + A − C| ≤ ΔC entrywise."""
+        unc = self.system.uncertain
+        g_pos, g_neg = self.g_pos[rows], self.g_neg[rows]
+        if not unc.size:
+            return np.zeros((g_pos.shape[0], 0)), np.zeros((g_pos.shape[0], 0))
+        e = unc.equation_map
+        c = np.asarray(e.T @ (g_pos - g_neg).T).T  # g_pos − g_neg is G exactly (one of the two is 0)
+        c += unc.limit_map[rows].toarray()
+        einner = int(np.diff(e.tocsc().indptr).max(initial=1))
+        c_err = np.asarray(g_pos @ abs(e)) + np.asarray(g_neg @ abs(e))  # |G| |E|
+        return c, inflate(gamma(einner + 2) * c_err, 1)
 
     def stack(self, up: np.ndarray, lo: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Bounds of all limit rows (monitored, then derived) from the monitored rows' bounds.
@@ -395,6 +443,18 @@ def _fraction_in(lower: np.ndarray, upper: np.ndarray, wl: np.ndarray, wu: np.nd
     return float(min(ratios.min(initial=np.inf), 1e300))
 
 
+def _describe_box(lower: np.ndarray, upper: np.ndarray, wl: np.ndarray, wu: np.ndarray,
+                  names: tuple[str, ...]) -> str:
+    """Widths of a box against the requested band, for a message (LP objectives)."""
+    band = wl + wu
+    total = float(np.sum(upper - lower) / np.sum(band)) if np.sum(band) > 0 else 0.0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        each = np.where(band > 0, (upper - lower) / band, np.inf)
+    k = int(np.argmin(each))
+    return (f"widths {total:.4g} of the requested band's total width, per injection "
+            f"{float(each.min()):.3g} ('{names[k]}') to {float(each[np.isfinite(each)].max(initial=0)):.3g}")
+
+
 def _uniform(eng: _Conditions, opts: CertifyOptions, wl: np.ndarray, wu: np.ndarray) -> tuple[float, np.ndarray]:
     """Largest t ≤ max_fraction with [−t wl, t wu] certified: bisection on t (least ω at each t),
     then a scan of ω's scale around the last least ω (:func:`_scan_scale`)."""
@@ -509,8 +569,10 @@ def _scan_scale(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndar
 
 
 def _lp_box(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarray, cap: float,
-            weights: np.ndarray, lower_fixed: bool, volume: bool = False) -> tuple[np.ndarray, np.ndarray] | None:
+            weights: np.ndarray, lower_fixed: float | None, volume: bool = False) -> tuple[np.ndarray, np.ndarray] | None:
     """Maximise Σ weights·(u − l) at fixed ω with HiGHS (or the log-volume with Clarabel); None if infeasible.
+
+    ``lower_fixed``: None, or the fraction of the band's lower side at which the lower ends are fixed.
 
     The rows are the conditions of the certificate at this ω, linear in (u, −l); their right-hand sides
     are shrunk by 1e-7 (relative) and the box is rechecked with proven bounds by the caller.
@@ -532,8 +594,9 @@ def _lp_box(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarray,
         return None
     active = np.any(a_ub != 0, axis=1)
     a_ub, b_ub = a_ub[active], b_ub[active] * (1 - 1e-7)
-    lb = np.concatenate([np.zeros(s), wl if lower_fixed else np.zeros(s)])
-    ub = np.concatenate([cap * wu, wl if lower_fixed else cap * wl])
+    fixed = None if lower_fixed is None else lower_fixed * wl
+    lb = np.concatenate([np.zeros(s), np.zeros(s) if fixed is None else fixed])
+    ub = np.concatenate([cap * wu, cap * wl if fixed is None else fixed])
     if volume:
         x = _volume_box(a_ub, b_ub, lb, ub, weights)
     else:
@@ -569,7 +632,7 @@ def _volume_box(a_ub: np.ndarray, b_ub: np.ndarray, lb: np.ndarray, ub: np.ndarr
 
 
 def _lp_search(eng: _Conditions, opts: CertifyOptions, wl: np.ndarray, wu: np.ndarray, weights: np.ndarray,
-               lower_fixed: bool, omega_start: np.ndarray, volume: bool = False
+               lower_fixed: float | None, omega_start: np.ndarray, volume: bool = False
                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Alternate LP at fixed ω and the least ω for the LP's box; keep the best proven box."""
     best: tuple[float, np.ndarray, np.ndarray, np.ndarray] | None = None
@@ -595,7 +658,7 @@ def _lp_search(eng: _Conditions, opts: CertifyOptions, wl: np.ndarray, wu: np.nd
                 break
             omega = tighter
     if best is None:
-        fixed = " with the lower ends fixed at the band's lower side" if lower_fixed else ""
+        fixed = "" if lower_fixed is None else f" with the lower ends fixed at {lower_fixed:.4g} of the band's lower side"
         raise CertificateError(f"the box LP found no certifiable box{fixed} at any tried region radius")
     return best[1], best[2], best[3]
 
@@ -691,6 +754,7 @@ def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "
     certificate can be formed (singular Jacobian, no self-mapping region).
     """
     t0 = time.perf_counter()
+    lower_kept = 1.0
     point = system.equations._check_point(point)
     eq = system.equations
     residual = eq.evaluate(point) - system.target
@@ -745,8 +809,15 @@ def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "
         lower, upper = -t * wl, t * wu
     elif objective in ("hosting", "widths", "volume"):
         t, omega_u = _uniform(eng, options, wl, wu)
-        lower, upper, omega = _lp_search(eng, options, wl, wu, weights, objective == "hosting", omega_u,
-                                         objective == "volume")
+        if objective == "hosting":
+            # the whole lower side if it can be kept, else the largest uniform fraction of it (certified above)
+            try:
+                lower, upper, omega = _lp_search(eng, options, wl, wu, weights, 1.0, omega_u)
+            except CertificateError:
+                lower_kept = t * (1.0 - 1e-6)  # just inside the certified uniform box: the LP shrinks its rows by 1e-7
+                lower, upper, omega = _lp_search(eng, options, wl, wu, weights, lower_kept, omega_u)
+        else:
+            lower, upper, omega = _lp_search(eng, options, wl, wu, weights, None, omega_u, objective == "volume")
         if objective == "widths" and weights @ (upper - lower) < weights @ (t * (wu + wl)):
             lower, upper, omega = -t * wl, t * wu, omega_u
     else:
@@ -759,8 +830,15 @@ def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "
                                f"{check.worst_margin:.3g}); no certificate is returned")
     status = "certified" if check.holds else "rejected"
     frac = _fraction_in(lower, upper, wl, wu)
-    message = (f"{status}: {frac:.4g} of the requested band; binding: {check.binding}"
-               if status == "certified" else f"rejected: {check.binding} fails (margin {check.worst_margin:.3g})")
+    if status == "rejected":
+        message = f"rejected: {check.binding} fails (margin {check.worst_margin:.3g})"
+    elif objective == "uniform":
+        message = f"certified: {frac:.4g} of the requested band; binding: {check.binding}"
+    else:
+        message = f"certified: {_describe_box(lower, upper, wl, wu, system.uncertain.names)}; binding: {check.binding}"
+        if objective == "hosting" and lower_kept < 1.0:
+            message += (f" (the whole lower side of the band cannot be kept: lower ends at {lower_kept:.4g} of it, "
+                        "upper ends maximised)")
     return Certificate(status, objective, system.uncertain.names, lower, upper, frac, omega, point,
                        matvec_upper(eng.abs_k, omega), policy, check.binding, check.worst_margin, message,
                        {"setup_s": t1 - t0, "search_s": t2 - t1, "recheck_s": t3 - t2, "total_s": t3 - t0}, eng)
