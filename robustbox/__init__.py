@@ -8,15 +8,16 @@ data (:mod:`robustbox.grid`) → quadratic system (:mod:`robustbox.quadratic`)
 report (:mod:`robustbox.report`) and command line (:mod:`robustbox.cli`).
 """
 from .bounds import RemainderOptions
-from .certify import Certificate, CertifyOptions, ConditionCheck, certify
+from .certify import Certificate, CertifyOptions, ConditionCheck, LimitResponse, certify
 from .errors import (CaseFileError, CertificateError, ModelStructureError, NetworkError, OperatingPointError,
                      QuadraticSystemError, RobustboxError, SolverError)
 from .quadratic import QuadraticMap, QuadraticSystem, UncertainSet
+from .transform import InjectionBox  # registers the transformation robustbox.injection_box
 
 __version__ = "0.1.0"
 
 __all__ = [
-    "CaseFileError", "Certificate", "CertificateError", "CertifyOptions", "ConditionCheck", "ModelStructureError",
+    "CaseFileError", "Certificate", "InjectionBox", "CertificateError", "CertifyOptions", "ConditionCheck", "LimitResponse", "ModelStructureError",
     "NetworkError", "OperatingPointError", "QuadraticMap", "QuadraticSystem", "QuadraticSystemError",
     "RemainderOptions", "RobustboxError", "SolverError", "UncertainSet", "certify",
 ]
