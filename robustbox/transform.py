@@ -159,14 +159,17 @@ class InjectionBox(Transformation):
         default=True, domain=bool, description="Fix the state variables at their operating values after the rewrite",
         doc="No active row uses them after the rewrite; their true values follow the recourse policy."))
     CONFIG.declare("block_name", ConfigValue(
-        default="robustbox_box", domain=str, description="Name of the Block that holds the box"))
+        default="robustbox_box", domain=IsInstance(str), description="Name of the Block that holds the box"))
     CONFIG.declare("reverse", ConfigValue(
         default=None, domain=IsInstance(ReverseTransformationToken),
         description="The token returned by apply_to: undo that rewrite"))
 
     def _apply_to(self, model, **kwds) -> ReverseTransformationToken | None:
-        config = self.CONFIG(kwds.pop("options", {}))
-        config.set_value(kwds)
+        try:
+            config = self.CONFIG(kwds.pop("options", {}))
+            config.set_value(kwds)
+        except ValueError as err:  # Pyomo's domain checks name the option; keep the message, our error type
+            raise ModelStructureError(f"{NAME}: {err}") from None
         if config.reverse is not None:
             config.reverse.check_token_valid(InjectionBox, model, [])
             restore(model, config.reverse.reverse_dict["block_name"])
@@ -268,6 +271,17 @@ def _bands(injections: list, suffix_bands: dict, config) -> list[tuple[float, fl
             band = (width, width)
         if band is None:
             raise ModelStructureError(f"no band for injection '{inj.name}': give band=, relative_band= or a Suffix")
+        if band[0] + band[1] == 0.0:
+            raise ModelStructureError(f"band of injection '{inj.name}' is zero on both sides: nothing to certify "
+                                      "(give it a band, or leave it out of the injections)")
+        if inj.is_variable_type():  # a decision cannot leave its own bounds: the band stops there
+            v0 = float(value(inj))
+            below = band[0] if inj.lb is None else min(band[0], max(v0 - float(inj.lb), 0.0))
+            above = band[1] if inj.ub is None else min(band[1], max(float(inj.ub) - v0, 0.0))
+            if below + above == 0.0:
+                raise ModelStructureError(f"injection '{inj.name}' sits at its bounds [{inj.lb}, {inj.ub}]: "
+                                          "no room to move inside them")
+            band = (below, above)
         bands.append(band)
     return bands
 
@@ -521,6 +535,31 @@ def _sides(scope: Scope) -> list[_Side]:
     return sides
 
 
+def _state_terms(body, index: dict) -> dict:
+    """Coefficients of the terms of ``body`` that contain a state variable (injection Vars fixed)."""
+    repn = generate_standard_repn(body, quadratic=True, compute_values=True)
+    out = {("l", id(v)): float(c) for v, c in zip(repn.linear_vars, repn.linear_coefs) if id(v) in index}
+    out.update({("q", id(a), id(b)): float(c) for (a, b), c in zip(repn.quadratic_vars, repn.quadratic_coefs)
+                if id(a) in index or id(b) in index})
+    return out
+
+
+def _check_state_terms_fixed(body, inj, index: dict, name: str) -> None:
+    """A kept row's state terms must not depend on an injection (a product of an injection and a
+    state variable has no bound that is linear in the downstream decisions)."""
+    v0 = float(value(inj))
+    sigs = []
+    for step in (0.0, 1.0, 2.0):
+        _set(inj, v0 + step)
+        sigs.append(_state_terms(body, index))
+    _set(inj, v0)
+    base = sigs[0]
+    for sig in sigs[1:]:
+        if set(sig) != set(base) or any(abs(sig[k] - c) > 1e-12 * (1.0 + abs(c)) for k, c in base.items()):
+            raise ModelStructureError(f"injection '{inj.name}' multiplies a state variable in '{name}'; "
+                                      "injections must enter the rows that use the state additively")
+
+
 def _response_rows(sides: list[_Side], index: dict, n: int, injections: list, param_ids: set
                    ) -> tuple[QuadraticMap, np.ndarray]:
     """Unbounded monitored rows  s·(state part of the body) + s·(uncertain part) Δp, one per side."""
@@ -555,8 +594,13 @@ def _response_rows(sides: list[_Side], index: dict, n: int, injections: list, pa
                 if mult:
                     raise ModelStructureError(f"uncertain injection '{mult[0]}' multiplies a variable in '{name}' "
                                               "(or enters it nonlinearly); injections must enter additively")
+        used = {id(c) for c in identify_mutable_parameters(side.component.expr)}
+        used |= {id(c) for c in identify_variables(side.component.expr, include_fixed=True)}
+        for inj in injections:
+            if id(inj) in used:
+                _check_state_terms_fixed(side.body, inj, index, name)
         for k, inj in enumerate(injections):
-            if id(inj) in param_ids and id(inj) in {id(p) for p in identify_mutable_parameters(side.component.expr)}:
+            if id(inj) in param_ids and id(inj) in used:
                 con = side.component
 
                 def offset(body=side.body, con=con, sg=side.sign) -> float:
@@ -640,7 +684,10 @@ def _rewrite(model, config, scope: Scope, injections: list, cert: Certificate, s
 def _block(model, block_name: str):
     blk = model.component(block_name)
     if blk is None or not hasattr(blk, "_robustbox_record"):
-        raise ModelStructureError(f"model '{model.name}' has no block '{block_name}' made by {NAME}")
+        made = [b.name for b in model.component_data_objects(Block, descend_into=True)
+                if hasattr(b, "_robustbox_record")]
+        raise ModelStructureError(f"model '{model.name}' has no block '{block_name}' made by {NAME}"
+                                  + (f" (blocks it made here: {', '.join(made)}; pass block_name=)" if made else ""))
     return blk
 
 

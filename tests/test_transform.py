@@ -440,6 +440,59 @@ def test_integer_state_and_injections_are_rejected_by_name():
         pyo.TransformationFactory(XF).apply_to(m, injections=[m.s, m.k], band=0.5)
 
 
+def _product_model() -> pyo.ConcreteModel:
+    """x = u + 1 with u a decision injection: the smallest model where u·x would appear in a kept row."""
+    m = pyo.ConcreteModel()
+    m.u = pyo.Var(bounds=(0, 10), initialize=1.0)
+    m.x = pyo.Var(bounds=(-100, 100), initialize=2.0)
+    m.y = pyo.Var(bounds=(0, 100), initialize=0.0)
+    m.phys = pyo.Constraint(expr=m.x == m.u + 1.0)
+    return m
+
+
+@pytest.mark.parametrize("where", ["objective", "kept row", "definition"])
+def test_product_of_an_injection_and_the_state_in_a_kept_row_is_rejected(where):
+    # u·x = u(u + 1) over u ∈ [0.5, 1.5] is not bounded by any expression linear in u that the rewrite
+    # could write from x's response alone (it once claimed 2.5 at u = 1.5, true 3.75): rejected by name
+    m = _product_model()
+    if where == "objective":
+        m.obj = pyo.Objective(expr=m.u * m.x)
+    elif where == "kept row":
+        m.row = pyo.Constraint(expr=m.u * m.x + m.y <= 10.0)
+    else:
+        m.cost = pyo.Var(initialize=8.0)
+        m.cdef = pyo.Constraint(expr=m.cost == 4 * m.u * m.x)
+        m.obj = pyo.Objective(expr=m.cost)
+    name = {"objective": "obj", "kept row": "row", "definition": "cdef"}[where]
+    with pytest.raises(ModelStructureError, match=f"injection 'u' multiplies a state variable in '{name}'"):
+        pyo.TransformationFactory(XF).apply_to(m, injections=[m.u], band=0.5)
+
+
+def test_injection_added_to_the_state_in_a_kept_row_is_exact():
+    # u + x = 2u + 1 exactly: the rewritten objective equals the true one at every u of the box
+    m = _product_model()
+    m.obj = pyo.Objective(expr=m.u + m.x + m.u ** 2)
+    pyo.TransformationFactory(XF).apply_to(m, injections=[m.u], band=0.5)
+    for u in np.linspace(*box_of(m)["u"], 5):
+        m.u.set_value(float(u))
+        true = u + (u + 1.0) + u ** 2
+        assert true - 1e-9 <= pyo.value(m.robustbox_box.objective.expr) <= true + 1e-6
+
+
+def test_zero_band_and_band_beyond_a_decisions_bounds():
+    m = _product_model()
+    with pytest.raises(ModelStructureError, match="band of injection 'u' is zero on both sides"):
+        pyo.TransformationFactory(XF).apply_to(m, injections=[m.u], band=0.0)
+    m.u.setub(1.2)  # the decision cannot go above 1.2: the band stops at its bound
+    pyo.TransformationFactory(XF).apply_to(m, injections=[m.u], band=0.5)
+    assert box_of(m)["u"] == pytest.approx((0.5, 1.2), abs=1e-9)
+    restore(m)
+    m.u.setlb(1.0)
+    m.u.setub(1.0)
+    with pytest.raises(ModelStructureError, match="injection 'u' sits at its bounds"):
+        pyo.TransformationFactory(XF).apply_to(m, injections=[m.u], band=0.5)
+
+
 # ------------------------------------------------------------------- scope and input handling
 def test_scope_errors_are_named():
     m = _solved_three_bus()
@@ -483,6 +536,15 @@ def test_option_domains_are_checked():
     xf.apply_to(m, injections=[m.wind3, m.pg2], band=0.1, held=m.e[1] ** 2 + m.f[1] ** 2)
     with pytest.raises(ModelStructureError, match="transformed by robustbox.injection_box already"):
         xf.apply_to(m, injections=[m.wind3], band=0.1, held=held, block_name="second_box")
+    with pytest.raises(ModelStructureError, match="has no block 'other' .*blocks it made here: robustbox_box"):
+        box_of(m, "other")
+    restore(m)
+    with pytest.raises(ModelStructureError, match="block_name"):
+        xf.apply_to(m, injections=[m.wind3], band=0.1, held=held, block_name=5)
+    with pytest.raises(ModelStructureError, match="relative_band"):
+        xf.apply_to(m, injections=[m.wind3], relative_band=-0.1, held=held)
+    with pytest.raises(ModelStructureError, match="objective"):
+        xf.apply_to(m, injections=[m.wind3], band=0.1, held=held, objective="largest")
 
 
 def test_relative_band_uses_the_values_after_solve_first():
