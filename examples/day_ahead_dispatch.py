@@ -28,7 +28,7 @@ import robustbox  # noqa: F401  (registers the transformation)
 from robustbox.cli import demo_case_path
 from robustbox.grid.casefile import read_case
 from robustbox.grid.model import build_opf
-from robustbox.grid.network import BUS_I, GEN_BUS
+from robustbox.grid.network import BUS_NUMBER, GEN_AT
 from robustbox.grid.powerflow import newton_power_flow
 from robustbox.grid.system import Injection, OperatingPoint
 from robustbox.solve import solve_model
@@ -97,13 +97,13 @@ def run(samples: int = 200, verbose: bool = True) -> DispatchStudy:
               f"{lp_bound:.2f} $/h")
         for g, p in zip(flexible, chosen):
             lo, up = box[model.pg[g].name]
-            print(f"  plant at bus {int(net.gen[net.gen_on[g], GEN_BUS])} ({c1[g]:.0f} $/MWh): {p * base:8.2f} MW "
+            print(f"  plant at bus {int(net.gen[net.gen_on[g], GEN_AT])} ({c1[g]:.0f} $/MWh): {p * base:8.2f} MW "
                   f"(operating point {op_pg[g] * base:.2f} MW, box {lo * base:.2f} .. {up * base:.2f} MW)")
     # AC check: the chosen dispatch, wind/solar over their certified ranges (pd moves down = injection up)
     lower = np.array([pd0[i] - box[model.pd[i].name][1] for i in sites] + list(chosen - op_pg[flexible]))
     upper = np.array([pd0[i] - box[model.pd[i].name][0] for i in sites] + list(chosen - op_pg[flexible]))
-    injections = [Injection(int(net.bus[i, BUS_I]), "p", 0, 0) for i in sites]
-    injections += [Injection(int(net.gen[net.gen_on[g], GEN_BUS]), "p", 0, 0) for g in flexible]
+    injections = [Injection(int(net.bus[i, BUS_NUMBER]), "p", 0, 0) for i in sites]
+    injections += [Injection(int(net.gen[net.gen_on[g], GEN_AT]), "p", 0, 0) for g in flexible]
     op = OperatingPoint(np.abs(op_voltage), np.angle(op_voltage), op_pg, op_qg)
     report = validate_box(net, op, injections, lower, upper, samples=samples)
     points, _ = sample_points(lower, upper, samples)

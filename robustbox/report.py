@@ -13,7 +13,7 @@ import networkx as nx  # noqa: E402
 import numpy as np  # noqa: E402
 
 from .errors import NetworkError  # noqa: E402
-from .grid.network import BUS_I, VMAX, VMIN  # noqa: E402
+from .grid.network import BUS_NUMBER, BUS_V_HIGH, BUS_V_LOW  # noqa: E402
 from .study import CAUTION, CaseCertificate, result_to_json  # noqa: E402
 from .validate import ValidationReport, evaluate_points  # noqa: E402
 
@@ -76,12 +76,12 @@ def network_figure(res: CaseCertificate, path: Path) -> Path:
     graph.add_nodes_from(range(net.n_bus))
     graph.add_edges_from(zip(f.tolist(), t.tolist()))
     pos = nx.kamada_kawai_layout(graph) if net.n_bus <= 400 else nx.spring_layout(graph, seed=1)
-    margin = np.minimum(net.bus[:, VMAX] - op.vm_pu, op.vm_pu - net.bus[:, VMIN])
+    margin = np.minimum(net.bus[:, BUS_V_HIGH] - op.vm_pu, op.vm_pu - net.bus[:, BUS_V_LOW])
     fig, ax = plt.subplots(figsize=(6.5, 5.5))
     nx.draw_networkx_edges(graph, pos, ax=ax, edge_color="#999999")
     nodes = nx.draw_networkx_nodes(graph, pos, ax=ax, node_color=margin, cmap="RdYlGn", node_size=120)
     if net.n_bus <= 60:
-        nx.draw_networkx_labels(graph, pos, {i: str(int(b)) for i, b in enumerate(net.bus[:, BUS_I])}, font_size=6, ax=ax)
+        nx.draw_networkx_labels(graph, pos, {i: str(int(b)) for i, b in enumerate(net.bus[:, BUS_NUMBER])}, font_size=6, ax=ax)
     fig.colorbar(nodes, ax=ax, label="voltage margin (pu)")
     ax.set_title("Voltage margin at the operating point")
     ax.axis("off")

@@ -17,7 +17,7 @@ from .certify import Certificate, CertifyOptions, Objective, certify
 from .errors import NetworkError, OperatingPointError
 from .grid.casefile import read_case
 from .grid.model import OPFResult, solve_opf
-from .grid.network import BUS_I, GEN_BUS, PG, QMAX, QMIN, VG, Network
+from .grid.network import BUS_NUMBER, GEN_AT, GEN_P, GEN_Q_HIGH, GEN_Q_LOW, GEN_V_SET, Network
 from .grid.powerflow import newton_power_flow
 from .grid.system import (Injection, NetworkSystem, OperatingPoint, build_system, largest_load_pq_buses,
                           load_injections, site_injections)
@@ -61,11 +61,11 @@ def point_to_json(net: Network, op: OperatingPoint) -> dict:
     on = net.gen_on
     return {
         "objective": op.objective_per_h,
-        "generators": [{"bus": int(net.gen[g, GEN_BUS]), "index": int(g), "p_mw": float(op.pg_pu[k] * net.base_mva),
-                        "q_mvar": float(op.qg_pu[k] * net.base_mva), "vm_pu": float(op.vm_pu[net.bus_index[net.gen[g, GEN_BUS]]])}
+        "generators": [{"bus": int(net.gen[g, GEN_AT]), "index": int(g), "p_mw": float(op.pg_pu[k] * net.base_mva),
+                        "q_mvar": float(op.qg_pu[k] * net.base_mva), "vm_pu": float(op.vm_pu[net.bus_index[net.gen[g, GEN_AT]]])}
                        for k, g in enumerate(on)],
         "buses": [{"bus": int(b), "vm_pu": float(op.vm_pu[i]), "va_deg": float(np.degrees(op.va_rad[i]))}
-                  for i, b in enumerate(net.bus[:, BUS_I])],
+                  for i, b in enumerate(net.bus[:, BUS_NUMBER])],
     }
 
 
@@ -98,9 +98,9 @@ def point_from_json(net: Network, data: dict, source: str = "point file") -> Ope
         return OperatingPoint(vm, va, pg, qg, data.get("objective"))
     work = net.copy()
     for k, g in enumerate(on):
-        work.gen[g, PG] = pg[k] * net.base_mva
+        work.gen[g, GEN_P] = pg[k] * net.base_mva
         try:
-            work.gen[g, VG] = float(gens[int(g)]["vm_pu"])
+            work.gen[g, GEN_V_SET] = float(gens[int(g)]["vm_pu"])
         except (KeyError, TypeError, ValueError):
             raise OperatingPointError(f"{source}: generator row {int(g)} needs a numeric \"vm_pu\"") from None
     return _power_flow_point(work)
@@ -111,17 +111,17 @@ def _power_flow_point(net: Network) -> OperatingPoint:
     gb = net.gen_bus_idx()
     on = net.gen_on
     sg = np.zeros(net.n_bus, dtype=complex)
-    fixed_q = np.where(net.gen[on, QMAX] == net.gen[on, QMIN], net.gen[on, QMIN], 0.0)  # no reactive range
-    np.add.at(sg, gb, (net.gen[on, PG] + 1j * fixed_q) / net.base_mva)
+    fixed_q = np.where(net.gen[on, GEN_Q_HIGH] == net.gen[on, GEN_Q_LOW], net.gen[on, GEN_Q_LOW], 0.0)  # no reactive range
+    np.add.at(sg, gb, (net.gen[on, GEN_P] + 1j * fixed_q) / net.base_mva)
     vm = np.ones(net.n_bus)
-    vm[gb] = net.gen[on, VG]
+    vm[gb] = net.gen[on, GEN_V_SET]
     res = newton_power_flow(net.admittance()[0], sg - net.load_pu(), vm.astype(complex), s, pv, pq)
     if not res.converged:
         raise OperatingPointError(f"{net.source}: the power flow for the given set-points does not converge "
                                   f"(mismatch {res.mismatch_pu:.3g} pu)")
     v = res.voltage
     s_bus = v * np.conj(net.admittance()[0] @ v) + net.load_pu()
-    pg, qg = net.gen[on, PG] / net.base_mva, np.zeros(len(on))
+    pg, qg = net.gen[on, GEN_P] / net.base_mva, np.zeros(len(on))
     for b in np.unique(gb):  # share the bus's Q (and slack P) among its generators equally
         ks = np.flatnonzero(gb == b)
         qg[ks] = s_bus[b].imag / len(ks)
@@ -166,7 +166,7 @@ def result_to_json(res: CaseCertificate) -> dict:
                     "requested_lower": float(nominal - inj.lower_pu * base),
                     "requested_upper": float(nominal + inj.upper_pu * base)})
     pt = point_to_json(net, op)
-    pt.update({"slack_bus": int(net.bus[nsys.slack, BUS_I]), "policy": nsys.describe_policy(),
+    pt.update({"slack_bus": int(net.bus[nsys.slack, BUS_NUMBER]), "policy": nsys.describe_policy(),
                "policy_kind": nsys.policy, "participation": [float(x) for x in nsys.participation]})
     out = {
         "format_version": FORMAT_VERSION, "case": str(net.source), "base_mva": base, "scenario": res.scenario,

@@ -16,7 +16,7 @@ from typing import Sequence
 
 import numpy as np
 
-from .grid.network import ANGMAX, ANGMIN, BUS_I, RATE_A, VMAX, VMIN, Network
+from .grid.network import BRANCH_ANGLE_HIGH, BRANCH_ANGLE_LOW, BUS_NUMBER, BRANCH_LIMIT_A, BUS_V_HIGH, BUS_V_LOW, Network
 from .grid.powerflow import newton_power_flow
 from .grid.system import Injection, OperatingPoint
 
@@ -58,26 +58,26 @@ class _Limits:
         _, self.yf, self.yt = net.admittance()
         self.f, self.t = net.branch_ends()
         self.br = net.branch[net.branch_on]
-        self.rated = self.br[:, RATE_A] > 0
+        self.rated = self.br[:, BRANCH_LIMIT_A] > 0
 
     def margins(self, v: np.ndarray, sg_bus: np.ndarray) -> dict[str, tuple[float, str]]:
         """Worst margin and the element that has it, per limit class, at one solved state."""
         net, base, agg, br = self.net, self.base, self.agg, self.br
         out: dict[str, tuple[float, str]] = {}
         vm = np.abs(v)
-        mv = np.minimum(net.bus[:, VMAX] - vm, vm - net.bus[:, VMIN])
+        mv = np.minimum(net.bus[:, BUS_V_HIGH] - vm, vm - net.bus[:, BUS_V_LOW])
         i = int(np.argmin(mv))
-        out["voltage_pu"] = (float(mv[i]), f"bus {int(net.bus[i, BUS_I])} |V| = {vm[i]:.5f} pu")
+        out["voltage_pu"] = (float(mv[i]), f"bus {int(net.bus[i, BUS_NUMBER])} |V| = {vm[i]:.5f} pu")
         buses = self.gen_buses
         mq = np.minimum(agg["qmax"][buses] - sg_bus.imag[buses], sg_bus.imag[buses] - agg["qmin"][buses]) * base
         i = int(np.argmin(mq))
-        out["gen_q_mvar"] = (float(mq[i]), f"bus {int(net.bus[buses[i], BUS_I])} Qgen = {sg_bus.imag[buses[i]] * base:.3f} Mvar")
+        out["gen_q_mvar"] = (float(mq[i]), f"bus {int(net.bus[buses[i], BUS_NUMBER])} Qgen = {sg_bus.imag[buses[i]] * base:.3f} Mvar")
         pb = self.p_buses
         if len(pb):
             mp = np.minimum(agg["pmax"][pb] - sg_bus.real[pb], sg_bus.real[pb] - agg["pmin"][pb]) * base
             i = int(np.argmin(mp))
-            out["gen_p_mw"] = (float(mp[i]), f"bus {int(net.bus[pb[i], BUS_I])} Pgen = {sg_bus.real[pb[i]] * base:.3f} MW")
-        f, t, rate = self.f, self.t, br[:, RATE_A]
+            out["gen_p_mw"] = (float(mp[i]), f"bus {int(net.bus[pb[i], BUS_NUMBER])} Pgen = {sg_bus.real[pb[i]] * base:.3f} MW")
+        f, t, rate = self.f, self.t, br[:, BRANCH_LIMIT_A]
         if np.any(self.rated):
             sf = np.abs(v[f] * np.conj(self.yf @ v)) * base
             st = np.abs(v[t] * np.conj(self.yt @ v)) * base
@@ -87,7 +87,7 @@ class _Limits:
             out["flow_mva"] = (float(ms[i]), f"branch {int(br[k, 0])}-{int(br[k, 1])} |S| = {max(sf[k], st[k]):.3f} MVA "
                                              f"(rating {rate[k]:.1f})")
         dth = np.degrees(np.angle(v[f] * np.conj(v[t])))
-        ma = np.minimum(br[:, ANGMAX] - dth, dth - br[:, ANGMIN])
+        ma = np.minimum(br[:, BRANCH_ANGLE_HIGH] - dth, dth - br[:, BRANCH_ANGLE_LOW])
         if len(ma):
             i = int(np.argmin(ma))
             out["angle_deg"] = (float(ma[i]), f"branch {int(br[i, 0])}-{int(br[i, 1])} angle difference {dth[i]:.3f} deg")

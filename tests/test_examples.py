@@ -16,7 +16,7 @@ import pytest
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "examples"))
 import day_ahead_dispatch as example  # noqa: E402
 
-from robustbox.grid.network import GEN_BUS  # noqa: E402
+from robustbox.grid.network import GEN_AT  # noqa: E402
 from robustbox.grid.system import Injection, OperatingPoint  # noqa: E402
 from robustbox.transform import box_of  # noqa: E402
 
@@ -37,7 +37,7 @@ def test_lp_picks_the_cheaper_end_for_every_flexible_plant(study):
     model, net, op = study.model, study.net, study.operating_point
     box = box_of(model)
     ends = {g: box[model.pg[g].name] for g in study.flexible}
-    injections = [Injection(int(net.gen[net.gen_on[g], GEN_BUS]), "p", 0, 0) for g in study.flexible]
+    injections = [Injection(int(net.gen[net.gen_on[g], GEN_AT]), "p", 0, 0) for g in study.flexible]
     chosen = dict(zip(study.flexible, study.chosen_pu))
     for g in study.flexible:
         lo, up = ends[g]

@@ -27,7 +27,7 @@ from independent import check_box
 from robustbox import ModelStructureError, OperatingPointError
 from robustbox.grid.casefile import read_case
 from robustbox.grid.model import build_opf
-from robustbox.grid.network import GEN_BUS, Network
+from robustbox.grid.network import GEN_AT, Network
 from robustbox.grid.system import Injection, OperatingPoint
 from robustbox.solve import solve_model
 from robustbox.transform import InjectionBox, box_of, certificate_of, restore
@@ -636,7 +636,7 @@ def test_pglib_network_rewrite_lp_and_ac_validation(name, margin):
     v = x[:n] + 1j * x[n:]
     op = OperatingPoint(np.abs(v), np.angle(v), pg0, qg0)
     inj = [Injection(int(net.bus[int(p.index()), 0]), "p", 0, 0) for p in loads]
-    inj += [Injection(int(net.gen[net.gen_on[g], GEN_BUS]), "p", 0, 0) for g in flexible]
+    inj += [Injection(int(net.gen[net.gen_on[g], GEN_AT]), "p", 0, 0) for g in flexible]
     k = len(loads)
     # a load increase is a net-injection decrease; the dispatch sits at the LP's choice
     lower = np.concatenate([-cert.upper[:k], chosen])

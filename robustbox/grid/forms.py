@@ -21,7 +21,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..quadratic import QuadraticMap
-from .network import ANGMAX, ANGMIN, Network
+from .network import BRANCH_ANGLE_HIGH, BRANCH_ANGLE_LOW, Network
 
 
 def pair_terms(y: np.ndarray, a: np.ndarray, b: np.ndarray, n: int) -> tuple[tuple[np.ndarray, ...], tuple[np.ndarray, ...]]:
@@ -121,7 +121,7 @@ def angle_forms(net: Network) -> QuadraticMap:
     rows_q, a_q, b_q, v_q, names = [], [], [], [], []
     out = 0
     for k in range(len(f)):
-        for col, sign in ((ANGMAX, 1.0), (ANGMIN, -1.0)):
+        for col, sign in ((BRANCH_ANGLE_HIGH, 1.0), (BRANCH_ANGLE_LOW, -1.0)):
             ang = br[k, col]
             if not -90.0 < ang < 90.0:
                 continue

@@ -21,7 +21,7 @@ from ..errors import NetworkError, SolverError
 from ..quadratic import QuadraticMap
 from ..solve import SolveResult, solve_model
 from .forms import angle_forms, branch_flow_forms, injection_forms
-from .network import ANGMAX, ANGMIN, PD, QD, RATE_A, VA, VM, VMAX, VMIN, Network
+from .network import BRANCH_ANGLE_HIGH, BRANCH_ANGLE_LOW, BUS_P_LOAD, BUS_Q_LOAD, BRANCH_LIMIT_A, BUS_V_ANG, BUS_V_MAG, BUS_V_HIGH, BUS_V_LOW, Network
 from .system import OperatingPoint
 
 
@@ -60,11 +60,11 @@ def build_opf(net: Network, margin: float = 0.0, margin_gen: float | None = None
     m = pyo.ConcreteModel(name=f"acopf_{net.name}")
     m.B = pyo.RangeSet(0, n - 1)
     m.G = pyo.RangeSet(0, len(on) - 1)
-    vmin, vmax = _tighten(net.bus[:, VMIN], net.bus[:, VMAX], margin)
+    vmin, vmax = _tighten(net.bus[:, BUS_V_LOW], net.bus[:, BUS_V_HIGH], margin)
     lim = net.gen_limits_pu()
     pmin, pmax = _tighten(lim["pmin"], lim["pmax"], margin_gen)
     qmin, qmax = _tighten(lim["qmin"], lim["qmax"], margin_gen)
-    vm0, va0 = net.bus[:, VM], np.radians(net.bus[:, VA] - net.bus[s, VA])
+    vm0, va0 = net.bus[:, BUS_V_MAG], np.radians(net.bus[:, BUS_V_ANG] - net.bus[s, BUS_V_ANG])
     m.x = pyo.Var(pyo.RangeSet(0, 2 * n - 1), initialize=lambda _, i: float(
         vm0[i] * np.cos(va0[i]) if i < n else vm0[i - n] * np.sin(va0[i - n])))
     for i in range(n):
@@ -79,29 +79,29 @@ def build_opf(net: Network, margin: float = 0.0, margin_gen: float | None = None
     for g, b in enumerate(gb):
         gens_at[b].append(g)
     # loads are mutable parameters (per unit) so that a model user can move them
-    m.pd = pyo.Param(m.B, mutable=True, initialize=lambda _, i: float(net.bus[i, PD] / base))
-    m.qd = pyo.Param(m.B, mutable=True, initialize=lambda _, i: float(net.bus[i, QD] / base))
+    m.pd = pyo.Param(m.B, mutable=True, initialize=lambda _, i: float(net.bus[i, BUS_P_LOAD] / base))
+    m.qd = pyo.Param(m.B, mutable=True, initialize=lambda _, i: float(net.bus[i, BUS_Q_LOAD] / base))
     m.p_balance = pyo.Constraint(m.B, rule=lambda mm, i: sum(mm.pg[g] for g in gens_at[i]) - mm.pd[i] == inj[i])
     m.q_balance = pyo.Constraint(m.B, rule=lambda mm, i: sum(mm.qg[g] for g in gens_at[i]) - mm.qd[i] == inj[n + i])
     m.voltage = pyo.Constraint(m.B, rule=lambda mm, i: (vmin[i] ** 2, mm.x[i] ** 2 + mm.x[n + i] ** 2, vmax[i] ** 2))
     # branch flows (exact circle through auxiliary variables)
     br = net.branch[net.branch_on]
-    rated = np.flatnonzero(br[:, RATE_A] > 0)
+    rated = np.flatnonzero(br[:, BRANCH_LIMIT_A] > 0)
     flows = _row_exprs(branch_flow_forms(net), m.x)
     m.R = pyo.RangeSet(0, 2 * len(rated) - 1) if len(rated) else pyo.Set(initialize=[])
     m.fp = pyo.Var(m.R, initialize=0.0)
     m.fq = pyo.Var(m.R, initialize=0.0)
-    rate = br[rated, RATE_A] / base * (1.0 - margin)
+    rate = br[rated, BRANCH_LIMIT_A] / base * (1.0 - margin)
     m.fp_def = pyo.Constraint(m.R, rule=lambda mm, r: mm.fp[r] == flows[4 * rated[r // 2] + 2 * (r % 2)])
     m.fq_def = pyo.Constraint(m.R, rule=lambda mm, r: mm.fq[r] == flows[4 * rated[r // 2] + 2 * (r % 2) + 1])
     m.flow_limit = pyo.Constraint(m.R, rule=lambda mm, r: mm.fp[r] ** 2 + mm.fq[r] ** 2 <= rate[r // 2] ** 2)
     # angle differences, tightened by the margin
     tight = net.copy()
-    lo_a, hi_a = tight.branch[:, ANGMIN].copy(), tight.branch[:, ANGMAX].copy()
+    lo_a, hi_a = tight.branch[:, BRANCH_ANGLE_LOW].copy(), tight.branch[:, BRANCH_ANGLE_HIGH].copy()
     inside = (lo_a > -90) & (hi_a < 90)
     lo_t, hi_t = _tighten(lo_a, hi_a, margin)
-    tight.branch[:, ANGMIN] = np.where(inside, lo_t, lo_a)
-    tight.branch[:, ANGMAX] = np.where(inside, hi_t, hi_a)
+    tight.branch[:, BRANCH_ANGLE_LOW] = np.where(inside, lo_t, lo_a)
+    tight.branch[:, BRANCH_ANGLE_HIGH] = np.where(inside, hi_t, hi_a)
     ang = _row_exprs(angle_forms(tight), m.x)
     m.A = pyo.RangeSet(0, len(ang) - 1) if ang else pyo.Set(initialize=[])
     m.angle = pyo.Constraint(m.A, rule=lambda mm, r: ang[r] <= 0.0)

@@ -14,11 +14,11 @@ import scipy.sparse as sp
 from ..errors import NetworkError
 
 # MATPOWER column indices (0-based), "MATPOWER User's Manual", Appendix B.
-BUS_I, BUS_TYPE, PD, QD, GS, BS, BUS_AREA, VM, VA, BASE_KV, ZONE, VMAX, VMIN = range(13)
-GEN_BUS, PG, QG, QMAX, QMIN, VG, MBASE, GEN_STATUS, PMAX, PMIN = range(10)
-F_BUS, T_BUS, BR_R, BR_X, BR_B, RATE_A, RATE_B, RATE_C, TAP, SHIFT, BR_STATUS, ANGMIN, ANGMAX = range(13)
+BUS_NUMBER, BUS_KIND, BUS_P_LOAD, BUS_Q_LOAD, BUS_G_SHUNT, BUS_B_SHUNT, BUS_REGION, BUS_V_MAG, BUS_V_ANG, BUS_KV, BUS_LOSS_ZONE, BUS_V_HIGH, BUS_V_LOW = range(13)
+GEN_AT, GEN_P, GEN_Q, GEN_Q_HIGH, GEN_Q_LOW, GEN_V_SET, GEN_MVA, GEN_ON, GEN_P_HIGH, GEN_P_LOW = range(10)
+BRANCH_FROM, BRANCH_TO, BRANCH_R, BRANCH_X, BRANCH_CHARGING, BRANCH_LIMIT_A, BRANCH_LIMIT_B, BRANCH_LIMIT_C, BRANCH_RATIO, BRANCH_SHIFT, BRANCH_ON, BRANCH_ANGLE_LOW, BRANCH_ANGLE_HIGH = range(13)
 BUS_COLS, GEN_COLS, BRANCH_COLS = 13, 10, 11
-PQ, PV, REF, NONE = 1, 2, 3, 4
+KIND_PQ, KIND_PV, KIND_SLACK, KIND_ISOLATED = 1, 2, 3, 4
 
 
 @dataclass(eq=False)
@@ -46,7 +46,7 @@ class Network:
         branch = np.array(branch, dtype=float, ndmin=2)
         if branch.shape[0] and BRANCH_COLS <= branch.shape[1] < 13:
             # angle-difference columns are optional in the format; missing means unlimited
-            pad = np.tile([-360.0, 360.0], (branch.shape[0], 1))[:, branch.shape[1] - ANGMIN:]
+            pad = np.tile([-360.0, 360.0], (branch.shape[0], 1))[:, branch.shape[1] - BRANCH_ANGLE_LOW:]
             branch = np.hstack([branch, pad])
         net = cls(name, float(base_mva), bus, gen, branch,
                   None if gencost is None else np.array(gencost, dtype=float, ndmin=2), source, dict(row_lines or {}),
@@ -70,7 +70,7 @@ class Network:
                 raise NetworkError(f"{self.where(table, int(bad[0, 0]))}: column {int(bad[0, 1]) + 1} is not a number")
         if not len(bus):
             raise NetworkError(f"{self.source}: the network has no buses")
-        nums = bus[:, BUS_I]
+        nums = bus[:, BUS_NUMBER]
         if np.any(nums != np.round(nums)) or np.any(nums <= 0):
             r = int(np.flatnonzero((nums != np.round(nums)) | (nums <= 0))[0])
             raise NetworkError(f"{self.where('bus', r)}: bus number {nums[r]} must be a positive integer")
@@ -78,30 +78,30 @@ class Network:
         if np.any(counts > 1):
             dup = uniq[counts > 1][0]
             raise NetworkError(f"{self.where('bus', int(np.flatnonzero(nums == dup)[1]))}: bus number {int(dup)} appears twice")
-        for r, t in enumerate(bus[:, BUS_TYPE]):
-            if t not in (PQ, PV, REF, NONE):
+        for r, t in enumerate(bus[:, BUS_KIND]):
+            if t not in (KIND_PQ, KIND_PV, KIND_SLACK, KIND_ISOLATED):
                 raise NetworkError(f"{self.where('bus', r)}: bus type {t} is not 1 (PQ), 2 (PV), 3 (slack) or 4 (isolated)")
-            if t == NONE:
+            if t == KIND_ISOLATED:
                 raise NetworkError(f"{self.where('bus', r)}: bus {int(nums[r])} is isolated (type 4); "
                                    "remove it and its branches before certification")
-            if bus[r, VMIN] > bus[r, VMAX] or bus[r, VMAX] <= 0:
-                raise NetworkError(f"{self.where('bus', r)}: voltage limits Vmin={bus[r, VMIN]} > Vmax={bus[r, VMAX]} "
+            if bus[r, BUS_V_LOW] > bus[r, BUS_V_HIGH] or bus[r, BUS_V_HIGH] <= 0:
+                raise NetworkError(f"{self.where('bus', r)}: voltage limits Vmin={bus[r, BUS_V_LOW]} > Vmax={bus[r, BUS_V_HIGH]} "
                                    f"at bus {int(nums[r])}")
         index = self.bus_index
-        for r, b in enumerate(gen[:, GEN_BUS]):
+        for r, b in enumerate(gen[:, GEN_AT]):
             if b not in index:
                 raise NetworkError(f"{self.where('gen', r)}: generator at bus {b:g}, no such bus")
-            if gen[r, GEN_STATUS] > 0 and (gen[r, PMIN] > gen[r, PMAX] or gen[r, QMIN] > gen[r, QMAX]):
+            if gen[r, GEN_ON] > 0 and (gen[r, GEN_P_LOW] > gen[r, GEN_P_HIGH] or gen[r, GEN_Q_LOW] > gen[r, GEN_Q_HIGH]):
                 raise NetworkError(f"{self.where('gen', r)}: generator at bus {int(b)} has min above max "
-                                   f"(P {gen[r, PMIN]}..{gen[r, PMAX]} MW, Q {gen[r, QMIN]}..{gen[r, QMAX]} Mvar)")
+                                   f"(P {gen[r, GEN_P_LOW]}..{gen[r, GEN_P_HIGH]} MW, Q {gen[r, GEN_Q_LOW]}..{gen[r, GEN_Q_HIGH]} Mvar)")
         for r in range(len(br)):
-            for col in (F_BUS, T_BUS):
+            for col in (BRANCH_FROM, BRANCH_TO):
                 if br[r, col] not in index:
                     raise NetworkError(f"{self.where('branch', r)}: branch end at bus {br[r, col]:g}, no such bus")
-            if br[r, BR_STATUS] > 0 and br[r, BR_R] == 0 and br[r, BR_X] == 0:
-                raise NetworkError(f"{self.where('branch', r)}: branch {int(br[r, F_BUS])}-{int(br[r, T_BUS])} "
+            if br[r, BRANCH_ON] > 0 and br[r, BRANCH_R] == 0 and br[r, BRANCH_X] == 0:
+                raise NetworkError(f"{self.where('branch', r)}: branch {int(br[r, BRANCH_FROM])}-{int(br[r, BRANCH_TO])} "
                                    "has zero impedance (r = x = 0)")
-        refs = np.flatnonzero(bus[:, BUS_TYPE] == REF)
+        refs = np.flatnonzero(bus[:, BUS_KIND] == KIND_SLACK)
         if len(refs) != 1:
             raise NetworkError(f"{self.source}: the network needs exactly one slack bus (type 3), found {len(refs)}")
         if not len(self.gen_on):
@@ -126,7 +126,7 @@ class Network:
     @property
     def bus_index(self) -> dict[float, int]:
         """Bus number → row index in the bus table."""
-        return {b: i for i, b in enumerate(self.bus[:, BUS_I])}
+        return {b: i for i, b in enumerate(self.bus[:, BUS_NUMBER])}
 
     @property
     def n_bus(self) -> int:
@@ -135,29 +135,29 @@ class Network:
     @property
     def gen_on(self) -> np.ndarray:
         """Indices of in-service generators."""
-        return np.flatnonzero(self.gen[:, GEN_STATUS] > 0)
+        return np.flatnonzero(self.gen[:, GEN_ON] > 0)
 
     @property
     def branch_on(self) -> np.ndarray:
         """Indices of in-service branches."""
-        return np.flatnonzero(self.branch[:, BR_STATUS] > 0)
+        return np.flatnonzero(self.branch[:, BRANCH_ON] > 0)
 
     def gen_bus_idx(self, rows: np.ndarray | None = None) -> np.ndarray:
         rows = self.gen_on if rows is None else rows
         idx = self.bus_index
-        return np.array([idx[b] for b in self.gen[rows, GEN_BUS]], dtype=np.int64)
+        return np.array([idx[b] for b in self.gen[rows, GEN_AT]], dtype=np.int64)
 
     def branch_ends(self, rows: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
         rows = self.branch_on if rows is None else rows
         idx = self.bus_index
-        return (np.array([idx[b] for b in self.branch[rows, F_BUS]], dtype=np.int64),
-                np.array([idx[b] for b in self.branch[rows, T_BUS]], dtype=np.int64))
+        return (np.array([idx[b] for b in self.branch[rows, BRANCH_FROM]], dtype=np.int64),
+                np.array([idx[b] for b in self.branch[rows, BRANCH_TO]], dtype=np.int64))
 
     @property
     def slack(self) -> int:
         """Index of the slack bus: the type-3 bus, or, when it has no generator in
         service, the first bus with one (MATPOWER's convention in ``bustypes``)."""
-        ref = int(np.flatnonzero(self.bus[:, BUS_TYPE] == REF)[0])
+        ref = int(np.flatnonzero(self.bus[:, BUS_KIND] == KIND_SLACK)[0])
         gens = self.gen_bus_idx()
         return ref if ref in set(gens.tolist()) else int(np.sort(gens)[0])
 
@@ -170,7 +170,7 @@ class Network:
         """
         has_gen = np.zeros(self.n_bus, dtype=bool)
         on = self.gen_on
-        can = (self.gen[on, QMAX] > self.gen[on, QMIN]) if reactive_range else np.ones(len(on), dtype=bool)
+        can = (self.gen[on, GEN_Q_HIGH] > self.gen[on, GEN_Q_LOW]) if reactive_range else np.ones(len(on), dtype=bool)
         has_gen[self.gen_bus_idx()[can]] = True
         s = self.slack
         pv = np.flatnonzero(has_gen & (np.arange(self.n_bus) != s))
@@ -181,9 +181,9 @@ class Network:
     def branch_admittances(self) -> tuple[np.ndarray, ...]:
         """(Yff, Yft, Ytf, Ytt) per in-service branch, per unit (π model with tap and shift)."""
         br = self.branch[self.branch_on]
-        ys = 1.0 / (br[:, BR_R] + 1j * br[:, BR_X])
-        bc = br[:, BR_B]
-        tap = np.where(br[:, TAP] == 0, 1.0, br[:, TAP]) * np.exp(1j * np.pi / 180.0 * br[:, SHIFT])
+        ys = 1.0 / (br[:, BRANCH_R] + 1j * br[:, BRANCH_X])
+        bc = br[:, BRANCH_CHARGING]
+        tap = np.where(br[:, BRANCH_RATIO] == 0, 1.0, br[:, BRANCH_RATIO]) * np.exp(1j * np.pi / 180.0 * br[:, BRANCH_SHIFT])
         ytt = ys + 1j * bc / 2.0
         yff = ytt / (tap * np.conj(tap))
         return yff, -ys / np.conj(tap), -ys / tap, ytt
@@ -196,7 +196,7 @@ class Network:
         rows = np.arange(nl)
         yf = sp.csr_matrix((np.concatenate([yff, yft]), (np.concatenate([rows, rows]), np.concatenate([f, t]))), (nl, n))
         yt = sp.csr_matrix((np.concatenate([ytf, ytt]), (np.concatenate([rows, rows]), np.concatenate([f, t]))), (nl, n))
-        ysh = (self.bus[:, GS] + 1j * self.bus[:, BS]) / self.base_mva
+        ysh = (self.bus[:, BUS_G_SHUNT] + 1j * self.bus[:, BUS_B_SHUNT]) / self.base_mva
         cf = sp.csr_matrix((np.ones(nl), (rows, f)), (nl, n))
         ct = sp.csr_matrix((np.ones(nl), (rows, t)), (nl, n))
         ybus = cf.T @ yf + ct.T @ yt + sp.diags(ysh)
@@ -205,13 +205,13 @@ class Network:
     # ----------------------------------------------------------- per unit
     def load_pu(self) -> np.ndarray:
         """Complex load per bus (Pd + j Qd) in per unit."""
-        return (self.bus[:, PD] + 1j * self.bus[:, QD]) / self.base_mva
+        return (self.bus[:, BUS_P_LOAD] + 1j * self.bus[:, BUS_Q_LOAD]) / self.base_mva
 
     def gen_limits_pu(self) -> dict[str, np.ndarray]:
         """Per-unit limits of the in-service generators (keys pmin, pmax, qmin, qmax)."""
         g = self.gen[self.gen_on]
-        return {"pmin": g[:, PMIN] / self.base_mva, "pmax": g[:, PMAX] / self.base_mva,
-                "qmin": g[:, QMIN] / self.base_mva, "qmax": g[:, QMAX] / self.base_mva}
+        return {"pmin": g[:, GEN_P_LOW] / self.base_mva, "pmax": g[:, GEN_P_HIGH] / self.base_mva,
+                "qmin": g[:, GEN_Q_LOW] / self.base_mva, "qmax": g[:, GEN_Q_HIGH] / self.base_mva}
 
     def copy(self) -> "Network":
         return Network(self.name, self.base_mva, self.bus.copy(), self.gen.copy(), self.branch.copy(),

@@ -16,7 +16,7 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from .network import PG, QG, VA, VG, VM, Network
+from .network import GEN_P, GEN_Q, BUS_V_ANG, GEN_V_SET, BUS_V_MAG, Network
 
 
 @dataclass(frozen=True)
@@ -118,8 +118,8 @@ def case_power_flow(net: Network, tol: float = 1e-10) -> PowerFlowResult:
     on = net.gen_on
     gb = net.gen_bus_idx()
     sg = np.zeros(net.n_bus, dtype=complex)
-    np.add.at(sg, gb, (net.gen[on, PG] + 1j * net.gen[on, QG]) / net.base_mva)
-    vm = net.bus[:, VM].copy()
-    vm[gb] = net.gen[on, VG]
-    v0 = vm * np.exp(1j * np.radians(net.bus[:, VA]))
+    np.add.at(sg, gb, (net.gen[on, GEN_P] + 1j * net.gen[on, GEN_Q]) / net.base_mva)
+    vm = net.bus[:, BUS_V_MAG].copy()
+    vm[gb] = net.gen[on, GEN_V_SET]
+    v0 = vm * np.exp(1j * np.radians(net.bus[:, BUS_V_ANG]))
     return newton_power_flow(ybus, sg - net.load_pu(), v0, s, pv, pq, tol=tol)

@@ -29,7 +29,7 @@ import scipy.sparse as sp
 from ..errors import NetworkError
 from ..quadratic import QuadraticMap, QuadraticSystem, UncertainSet
 from .forms import angle_forms, branch_flow_forms, injection_forms, voltage_forms
-from .network import BUS_I, PD, QD, RATE_A, VMAX, VMIN, Network
+from .network import BUS_NUMBER, BUS_P_LOAD, BUS_Q_LOAD, BRANCH_LIMIT_A, BUS_V_HIGH, BUS_V_LOW, Network
 
 Policy = Literal["slack", "distributed"]
 
@@ -82,7 +82,7 @@ class NetworkSystem:
 
     def describe_policy(self) -> str:
         if self.policy == "slack":
-            return (f"slack bus {int(self.network.bus[self.slack, BUS_I])} absorbs the balance; "
+            return (f"slack bus {int(self.network.bus[self.slack, BUS_NUMBER])} absorbs the balance; "
                     "PV-bus voltage magnitudes and generator P set-points are held")
         return ("distributed slack: generators share the balance by participation factors; "
                 "PV-bus voltage magnitudes are held")
@@ -145,10 +145,10 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     all_gen_bus = np.unique(net.gen_bus_idx())
     p_lim_bus = all_gen_bus[bus_part[all_gen_bus] > 0] if dist else np.array([s])
     maps = [vol.take(pq), inj.take(p_lim_bus), inj.take(n + gen_bus)]
-    lower = [net.bus[pq, VMIN] ** 2, pmin_b[p_lim_bus] - load.real[p_lim_bus], qmin_b[gen_bus] - load.imag[gen_bus]]
-    upper = [net.bus[pq, VMAX] ** 2, pmax_b[p_lim_bus] - load.real[p_lim_bus], qmax_b[gen_bus] - load.imag[gen_bus]]
+    lower = [net.bus[pq, BUS_V_LOW] ** 2, pmin_b[p_lim_bus] - load.real[p_lim_bus], qmin_b[gen_bus] - load.imag[gen_bus]]
+    upper = [net.bus[pq, BUS_V_HIGH] ** 2, pmax_b[p_lim_bus] - load.real[p_lim_bus], qmax_b[gen_bus] - load.imag[gen_bus]]
     flows = branch_flow_forms(net)
-    rated = np.flatnonzero(net.branch[net.branch_on, RATE_A] > 0)
+    rated = np.flatnonzero(net.branch[net.branch_on, BRANCH_LIMIT_A] > 0)
     flow_rows = (4 * rated[:, None] + np.arange(4)[None, :]).reshape(-1)
     ang = angle_forms(net)
     maps += [flows.take(flow_rows), ang]
@@ -160,9 +160,9 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     names = list(lim_full.names)
     n_v, n_p = len(pq), len(p_lim_bus)
     for k, b in enumerate(p_lim_bus):
-        names[n_v + k] = f"Pgen[{int(net.bus[b, BUS_I])}]"
+        names[n_v + k] = f"Pgen[{int(net.bus[b, BUS_NUMBER])}]"
     for k, b in enumerate(gen_bus):
-        names[n_v + n_p + k] = f"Qgen[{int(net.bus[b, BUS_I])}]"
+        names[n_v + n_p + k] = f"Qgen[{int(net.bus[b, BUS_NUMBER])}]"
     lim_map = lim_full.substitute(new_index, x_full, n_vars)
     lim_map = QuadraticMap(lim_map.n_vars, lim_map.n_rows, lim_map.q_row, lim_map.q_a, lim_map.q_b, lim_map.q_val,
                            lim_map.linear, lim_map.constant, tuple(names))
@@ -199,8 +199,8 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
                        sp.csr_matrix((-np.ones(len(a_r)), (a_r, a_c)), shape=(lim_map.n_rows, n_unc)),
                        np.array([i.lower_pu for i in injections], dtype=float),
                        np.array([i.upper_pu for i in injections], dtype=float))
-    var_names = [f"e[{int(net.bus[i, BUS_I])}]" for i in range(n) if i != s]
-    var_names += [f"f[{int(net.bus[i, BUS_I])}]" for i in range(n) if i != s]
+    var_names = [f"e[{int(net.bus[i, BUS_NUMBER])}]" for i in range(n) if i != s]
+    var_names += [f"f[{int(net.bus[i, BUS_NUMBER])}]" for i in range(n) if i != s]
     if dist:
         var_names.append("alpha")
     point = np.concatenate([x_full[free], [0.0]]) if dist else x_full[free]
@@ -229,7 +229,7 @@ def _flow_polygon(net: Network, rated: np.ndarray, first: int, n_rows: int, face
     p_row = first + 2 * end  # Pf/Pt row of that end; Q is the next row
     w = sp.csr_matrix((np.concatenate([np.cos(phis)[out % faces], np.sin(phis)[out % faces]]),
                        (np.concatenate([out, out]), np.concatenate([p_row, p_row + 1]))), shape=(len(out), n_rows))
-    rate = net.branch[net.branch_on[rated], RATE_A] / net.base_mva
+    rate = net.branch[net.branch_on[rated], BRANCH_LIMIT_A] / net.base_mva
     upper = np.repeat(np.repeat(rate, 2), faces) * np.cos(np.pi / faces)
     names = []
     for k in rated:
@@ -244,10 +244,10 @@ def load_injections(net: Network, band: float) -> list[Injection]:
     """P and Q of every load may deviate by ± band × nominal (loads with nonzero P or Q)."""
     out = []
     for r in range(net.n_bus):
-        for quantity, col in (("p", PD), ("q", QD)):
+        for quantity, col in (("p", BUS_P_LOAD), ("q", BUS_Q_LOAD)):
             val = abs(net.bus[r, col]) / net.base_mva * band
             if val > 0:
-                out.append(Injection(int(net.bus[r, BUS_I]), quantity, val, val))
+                out.append(Injection(int(net.bus[r, BUS_NUMBER]), quantity, val, val))
     return out
 
 
@@ -259,5 +259,5 @@ def site_injections(net: Network, buses: Sequence[int], band: float, size_mw: fl
 def largest_load_pq_buses(net: Network, count: int = 5) -> list[int]:
     """Bus numbers of the ``count`` PQ buses with the largest active load."""
     _, _, pq = net.bus_kinds()
-    order = pq[np.argsort(-net.bus[pq, PD], kind="stable")]
-    return [int(net.bus[i, BUS_I]) for i in order[:count]]
+    order = pq[np.argsort(-net.bus[pq, BUS_P_LOAD], kind="stable")]
+    return [int(net.bus[i, BUS_NUMBER]) for i in order[:count]]
