@@ -27,17 +27,8 @@ def demo_case_path() -> Path:
 
 
 def _progress(enabled: bool):
-    if not enabled:
-        return None
-
-    def show(done: int, total: int) -> None:
-        width = 30
-        filled = int(width * done / max(total, 1))
-        sys.stderr.write(f"\r  sampling [{'#' * filled}{'.' * (width - filled)}] {done}/{total}")
-        if done == total:
-            sys.stderr.write("\n")
-        sys.stderr.flush()
-    return show
+    from .fanout import progress_bar
+    return progress_bar("sampling", enabled)
 
 
 def _uncertain(text: str):
