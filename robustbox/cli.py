@@ -134,6 +134,63 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     return EXIT_OK if rep.passed else EXIT_VIOLATION
 
 
+def _case_or_demo(text: str) -> Path:
+    """A case file; the word 'demo' (with no such file here) is the built-in fictional grid."""
+    return demo_case_path() if text == "demo" and not Path(text).exists() else Path(text)
+
+
+def _buses(text: str) -> tuple[int, ...]:
+    try:
+        return tuple(int(b) for b in text.split(",") if b.strip())
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"bus numbers like 5,9,17 (got '{text}')") from None
+
+
+def _fan_out(args: argparse.Namespace):
+    from .fanout import FanOut
+    if args.workers is not None and args.workers < 1:
+        raise NetworkError(f"--workers must be ≥ 1, got {args.workers}")
+    return FanOut(serial=args.serial, scheduler=args.scheduler, workers=args.workers)
+
+
+def _cmd_envelopes(args: argparse.Namespace) -> int:
+    from .envelopes import EnvelopeSettings, default_connections, read_profile, run_envelopes, summarize
+    from .fanout import progress_bar
+    from .report import write_envelope_report
+    net = read_case(_case_or_demo(args.case))
+    profile = read_profile(args.profile, net)
+    settings = EnvelopeSettings(args.connections or default_connections(net), args.import_mw, args.export_mw,
+                                args.margin, args.policy, args.point, args.block)
+    how = _fan_out(args)
+    out = Path(args.out)
+    print(f"{len(profile)} intervals of {args.profile} on {net.name}; connections at buses "
+          f"{', '.join(map(str, settings.connections))}; {how.describe()}")
+    t0 = time.perf_counter()
+    run = run_envelopes(net, profile, settings, out, how, fresh=args.fresh, retry_failed=args.retry_failed,
+                        progress=progress_bar("intervals"))
+    summary = summarize(run.rows, settings.connections, args.threshold_mw)
+    (out / "summary.json").write_text(json.dumps(summary, indent=2), encoding="utf-8")
+    report = write_envelope_report(run, settings, summary, out)
+    print(f"computed {run.computed} intervals in {time.perf_counter() - t0:.1f} s ({run.skipped} already done), "
+          f"{run.failed} failed")
+    print(f"{'bus':>6} {'certified':>9} {'failed':>6} {'median export MW':>17} {'min export MW':>14}"
+          + (f" {'below ' + format(args.threshold_mw, 'g') + ' MW':>12}" if args.threshold_mw is not None else ""))
+    for b, e in summary["connections"].items():
+        med, low = e.get("export_headroom_mw_median", float("nan")), e.get("export_headroom_mw_min", float("nan"))
+        print(f"{b:>6} {e['certified']:>9} {e['failed']:>6} {med:>17.2f} {low:>14.2f}"
+              + (f" {e['intervals_below_threshold']:>12}" if args.threshold_mw is not None else ""))
+    for name, path in {**run.files, "summary": out / "summary.json", "report": report}.items():
+        print(f"wrote {path}")
+    return EXIT_OK
+
+
+def _cmd_profile_demo(args: argparse.Namespace) -> int:
+    from .envelopes import demo_profile
+    path = demo_profile(read_case(demo_case_path()), args.out, args.hours, args.seed)
+    print(f"wrote {path} ({args.hours} invented hourly intervals for the demo grid)")
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="robustbox", description="Certified inner boxes of injections for AC power flow.")
     p.add_argument("--debug", action="store_true", help="show tracebacks")
@@ -167,6 +224,31 @@ def build_parser() -> argparse.ArgumentParser:
     d = sub.add_parser("demo", help="the whole job on the built-in fictional demo grid")
     d.add_argument("--out", help="report folder (default: a new folder here)")
     d.set_defaults(func=_cmd_demo)
+    e = sub.add_parser("envelopes", help="certified per-connection import/export limits for every interval of a profile")
+    e.add_argument("case", help="case file ('demo': the built-in fictional grid)")
+    e.add_argument("profile", help="profile CSV: time column, then load / wind / solar / load@BUS / site@BUS scalings")
+    e.add_argument("--connections", type=_buses, help="connection buses, e.g. 5,9,17 (default: the case's marked "
+                   "sites, else the five largest-load PQ buses)")
+    e.add_argument("--import-mw", type=float, default=50.0, help="requested import per connection, MW (default 50)")
+    e.add_argument("--export-mw", type=float, default=50.0, help="requested export per connection, MW (default 50)")
+    e.add_argument("--margin", type=float, default=0.05, help="limit margin of each interval's OPF (default 0.05)")
+    e.add_argument("--point", choices=["opf", "flow"], default="opf",
+                   help="operating point per interval: margin AC-OPF, or a power flow of the scaled case dispatch")
+    e.add_argument("--policy", choices=["slack", "distributed"], default="distributed", help="recourse policy")
+    e.add_argument("--threshold-mw", type=float, help="summary: count intervals whose certified export headroom is below this")
+    e.add_argument("--out", default="envelopes", help="output folder (default ./envelopes); a rerun resumes it")
+    e.add_argument("--fresh", action="store_true", help="discard what the output folder holds and start again")
+    e.add_argument("--retry-failed", action="store_true", help="recompute the intervals recorded as failed")
+    e.add_argument("--block", type=int, default=24, help="consecutive intervals per task (warm starts run inside)")
+    e.add_argument("--serial", action="store_true", help="run in this process (no Dask)")
+    e.add_argument("--workers", type=int, help="local Dask worker processes (default: min(2, CPUs))")
+    e.add_argument("--scheduler", help="address of an existing Dask scheduler, e.g. tcp://10.0.0.5:8786")
+    e.set_defaults(func=_cmd_envelopes)
+    g = sub.add_parser("profile-demo", help="write an invented hourly profile for the demo grid")
+    g.add_argument("out", help="CSV file to write")
+    g.add_argument("--hours", type=int, default=8760)
+    g.add_argument("--seed", type=int, default=2027)
+    g.set_defaults(func=_cmd_profile_demo)
     return p
 
 

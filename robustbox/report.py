@@ -4,6 +4,7 @@ from __future__ import annotations
 import base64
 import html
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import matplotlib
 
@@ -16,6 +17,9 @@ from .errors import NetworkError  # noqa: E402
 from .grid.network import BUS_NUMBER, BUS_V_HIGH, BUS_V_LOW  # noqa: E402
 from .study import CAUTION, CaseCertificate, result_to_json  # noqa: E402
 from .validate import ValidationReport, evaluate_points  # noqa: E402
+
+if TYPE_CHECKING:
+    from .envelopes import EnvelopeRow, EnvelopeRun, EnvelopeSettings
 
 
 def envelope_figure(data: dict, path: Path) -> Path:
@@ -114,8 +118,7 @@ def write_report(res: CaseCertificate, folder: str | Path, validation: Validatio
         figs.insert(1, slice_figure(res, folder / "slice.png", idx))
     rows = "".join(f"<tr><td>{e['bus']}</td><td>{e['quantity'].upper()}</td><td>{e['nominal']:.2f}</td>"
                    f"<td>{e['lower']:.2f}</td><td>{e['upper']:.2f}</td><td>{e['unit']}</td></tr>" for e in data["box"])
-    imgs = "".join(f'<p><img alt="{p.stem}" src="data:image/png;base64,{base64.b64encode(p.read_bytes()).decode()}"/></p>'
-                   for p in figs)
+    imgs = _embedded(figs)
     val = ""
     if validation is not None:
         val = (f"<h2>Independent validation</h2><p>{validation.points} power flows ({validation.vertices} vertices): "
@@ -126,16 +129,85 @@ def write_report(res: CaseCertificate, folder: str | Path, validation: Validatio
         inc = opf["cost_increase_per_h"]
         opf_html = (f"<p>Operating point: AC-OPF with margin {opf['margin']:g}, cost {opf['objective_per_h']:.2f} $/h"
                     + (f" (+{inc:.2f} $/h over the untightened optimum)" if inc is not None else "") + ".</p>")
-    page = f"""<!doctype html><html><head><meta charset="utf-8"><title>robustbox report — {html.escape(res.network.name)}</title>
-<style>body{{font-family:sans-serif;max-width:60em;margin:2em auto}}td,th{{padding:2px 8px;text-align:right}}
-.caution{{border:1px solid #c60;padding:.5em;background:#fff6ee}}</style></head><body>
-<h1>Certified injection box — {html.escape(res.network.name)}</h1>
+    page = _page(f"robustbox report — {res.network.name}", f"""<h1>Certified injection box — {html.escape(res.network.name)}</h1>
 <p class="caution"><b>Caution.</b> {html.escape(CAUTION)}</p>
 <p>{html.escape(res.scenario)}.</p><p>Status: <b>{data['status']}</b>; certified fraction of the requested band:
 <b>{data['certified_fraction']:.4g}</b>; binding condition: {html.escape(data['binding_limit'])}.</p>
 <p>Recourse policy: {html.escape(data['operating_point']['policy'])}.</p>{opf_html}
 <table><tr><th>bus</th><th>quantity</th><th>nominal</th><th>certified lower</th><th>certified upper</th><th>unit</th></tr>
-{rows}</table>{val}{imgs}</body></html>"""
+{rows}</table>{val}{imgs}""")
+    out = folder / "report.html"
+    out.write_text(page, encoding="utf-8")
+    return out
+
+
+def _embedded(figs: list[Path]) -> str:
+    return "".join(f'<p><img alt="{p.stem}" src="data:image/png;base64,{base64.b64encode(p.read_bytes()).decode()}"/></p>'
+                   for p in figs)
+
+
+def _page(title: str, body: str) -> str:
+    """A self-contained HTML page with the reports' style."""
+    return f"""<!doctype html><html><head><meta charset="utf-8"><title>{html.escape(title)}</title>
+<style>body{{font-family:sans-serif;max-width:60em;margin:2em auto}}td,th{{padding:2px 8px;text-align:right}}
+.caution{{border:1px solid #c60;padding:.5em;background:#fff6ee}}</style></head><body>
+{body}</body></html>"""
+
+
+def envelopes_figure(rows: "list[EnvelopeRow]", connections: tuple[int, ...], path: Path) -> Path:
+    """Each connection's certified envelope against time (EnvelopeRow list; failed intervals marked)."""
+    n = len(connections)
+    fig, axes = plt.subplots(n, 1, figsize=(10, 1.9 * n + 0.8), sharex=True, squeeze=False)
+    for ax, b in zip(axes[:, 0], connections):
+        mine = [r for r in rows if r.bus == b]
+        x = np.array([r.interval for r in mine])
+        get = lambda name: np.array([getattr(r, name) for r in mine], dtype=float)  # noqa: E731
+        ax.fill_between(x, get("lower_mw"), get("upper_mw"), step="mid", color="#2b8cbe", alpha=0.55,
+                        label="certified both ways")
+        ax.step(x, get("export_limit_mw"), where="mid", color="#08519c", lw=0.7, label="export limit (all exporting)")
+        ax.step(x, get("import_limit_mw"), where="mid", color="#6a51a3", lw=0.7, label="import limit (all importing)")
+        ax.step(x, get("nominal_mw"), where="mid", color="k", lw=0.6, ls="--", label="operating point")
+        bad = x[[r.status != "certified" for r in mine]]
+        if len(bad):
+            ax.plot(bad, np.zeros(len(bad)), "|", color="#d62728", ms=8, label="failed interval")
+        ax.set_ylabel(f"bus {b}\nMW")
+    handles, labels = axes[0, 0].get_legend_handles_labels()
+    fig.legend(handles, labels, loc="lower center", fontsize=8, ncol=5, frameon=False)
+    times = {r.interval: r.time for r in rows}
+    ticks = sorted(times)[:: max(1, len(times) // 8)]
+    axes[-1, 0].set_xticks(ticks, [times[t] for t in ticks], rotation=20, fontsize=7, ha="right")
+    axes[-1, 0].set_xlabel("interval")
+    axes[0, 0].set_title("Certified operating envelopes per connection (net injection, generation positive)")
+    fig.tight_layout(rect=(0, 0.04, 1, 1))
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return path
+
+
+def write_envelope_report(run: "EnvelopeRun", settings: "EnvelopeSettings", summary: dict, folder: str | Path) -> Path:
+    """``envelopes.png`` and ``report.html`` (figure, per-connection summary, caution) for an envelope run."""
+    folder = Path(folder)
+    fig = envelopes_figure(run.rows, settings.connections, folder / "envelopes.png")
+    thr = summary["threshold_mw"]
+    head = "".join(f"<th>{h}</th>" for h in ["bus", "intervals", "certified", "failed", "median export headroom MW",
+                                             "min export headroom MW", "median import headroom MW"]
+                   + ([f"below {thr:g} MW export"] if thr is not None else []))
+    body_rows = []
+    for b, e in summary["connections"].items():
+        cells = [b, e["intervals"], e["certified"], e["failed"]] + [
+            f"{e[k]:.2f}" if k in e else "–" for k in ("export_headroom_mw_median", "export_headroom_mw_min",
+                                                        "import_headroom_mw_median")]
+        if thr is not None:
+            cells.append(e["intervals_below_threshold"])
+        body_rows.append("<tr>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>")
+    page = _page("robustbox operating envelopes", f"""<h1>Certified operating envelopes</h1>
+<p class="caution"><b>Caution.</b> {html.escape(CAUTION)}</p>
+<p>{run.intervals} intervals ({run.computed} computed in this run, {run.skipped} already in the folder,
+{run.failed} failed with a recorded reason). Connections: {", ".join(map(str, settings.connections))}; requested
+import {settings.import_mw:g} MW and export {settings.export_mw:g} MW per connection; operating point
+{html.escape(settings.point)} (margin {settings.margin:g}), recourse {html.escape(settings.policy)}.
+Within the blue band, every combination of the connections' injections is certified at once.</p>
+<table><tr>{head}</tr>{"".join(body_rows)}</table>{_embedded([fig])}""")
     out = folder / "report.html"
     out.write_text(page, encoding="utf-8")
     return out

@@ -103,10 +103,10 @@ def point_from_json(net: Network, data: dict, source: str = "point file") -> Ope
             work.gen[g, GEN_V_SET] = float(gens[int(g)]["vm_pu"])
         except (KeyError, TypeError, ValueError):
             raise OperatingPointError(f"{source}: generator row {int(g)} needs a numeric \"vm_pu\"") from None
-    return _power_flow_point(work)
+    return power_flow_point(work)
 
 
-def _power_flow_point(net: Network) -> OperatingPoint:
+def power_flow_point(net: Network) -> OperatingPoint:
     s, pv, pq = net.bus_kinds()
     gb = net.gen_bus_idx()
     on = net.gen_on

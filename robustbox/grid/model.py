@@ -166,15 +166,17 @@ def _point_of(net: Network, model: pyo.ConcreteModel, objective: float) -> Opera
 
 
 def solve_opf(net: Network, margin: float = 0.0, tol: float = 1e-8, compare_base: bool = True,
-              margin_gen: float | None = None) -> OPFResult:
+              margin_gen: float | None = None, start: OperatingPoint | None = None) -> OPFResult:
     """Solve the AC-OPF (tightened by ``margin``; ``margin_gen`` for generator P and Q, see build_opf) with Ipopt.
 
     With a margin and ``compare_base``, the untightened OPF is solved first and
-    its optimum is reported beside the tightened one (the price of security).
+    its optimum is reported beside the tightened one (the price of security);
+    its solution is then Ipopt's starting point, else ``start`` if given (e.g.
+    the previous interval of a time series), else a flat start.
     """
     t0 = time.perf_counter()
     base_obj = None
-    warm = None
+    warm = start
     if margin > 0 and compare_base:
         base = solve_opf(net, 0.0, tol, compare_base=False)
         base_obj, warm = base.objective_per_h, base.point
