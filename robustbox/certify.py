@@ -767,6 +767,10 @@ def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "
     excess = np.maximum(h - system.limit_upper, system.limit_lower - h)
     viol = [f"'{system.limits.names[t]}' = {h[t]:.9g} outside [{system.limit_lower[t]:.9g}, {system.limit_upper[t]:.9g}]"
             f" by {excess[t]:.3g}" for t in np.flatnonzero(excess > 0)]
+    if system.derived is not None and system.derived.shape[0]:  # e.g. the faces of a flow polygon
+        d = np.asarray(system.derived @ h).ravel()
+        viol += [f"'{system.derived_names[t]}' = {d[t]:.9g} above {system.derived_upper[t]:.9g} by "
+                 f"{d[t] - system.derived_upper[t]:.3g}" for t in np.flatnonzero(d > system.derived_upper)]
     if viol:
         raise OperatingPointError("the operating point violates " + f"{len(viol)} limit(s), so the box is empty: "
                                   + "; ".join(viol[:10]) + (" ..." if len(viol) > 10 else ""), viol)
