@@ -282,8 +282,9 @@ def run_block(block: Block) -> list[IntervalResult]:
         try:
             op = _operating_point(net, block.settings, start)
             rows, part = envelope_at(net, op, block.settings, k, time)
-        except RobustboxError as exc:
-            why = str(exc).replace("\n", " ")
+        except Exception as exc:  # noqa: BLE001 - recorded with its reason; one interval never stops the run
+            why = str(exc) if isinstance(exc, RobustboxError) else f"internal error ({type(exc).__name__}: {exc})"
+            why = why.replace("\n", " ")
             out.append(IntervalResult(tuple(EnvelopeRow(k, time, b, math.nan, math.nan, math.nan, math.nan, math.nan,
                                                         "", "", "", "failed", why) for b in block.settings.connections)))
             start = None
