@@ -138,12 +138,13 @@ def split_islanding(net: Network, outages: Sequence[Outage]) -> tuple[list[Outag
 
 
 def secure_point(net: Network, outages: Sequence[Outage], policy: Policy, margin: float | None,
-                 progress: Callable[[str], None] | None = None) -> SCOPFResult:
+                 progress: Callable[[str], None] | None = None, skip_insecure: bool = False) -> SCOPFResult:
     """Preventive SCOPF point; without a ``margin`` the ladder MARGIN_LADDER is tried in turn."""
     ladder = (margin,) if margin is not None else MARGIN_LADDER
     for k, m in enumerate(ladder):
         try:
-            return solve_scopf(net, outages, policy, m, progress=progress, name_culprits=k == len(ladder) - 1)
+            return solve_scopf(net, outages, policy, m, progress=progress, name_culprits=k == len(ladder) - 1,
+                               skip_insecure=skip_insecure)
         except SolverError:
             if k == len(ladder) - 1:
                 raise
@@ -156,11 +157,13 @@ def certify_secure(case: str | Path | Network, contingencies: str | Path, uncert
                    margin: float | None = None, point: dict | None = None, policy: Policy = "distributed",
                    options: CertifyOptions = CertifyOptions(), fanout: FanOut = FanOut(),
                    point_source: str = "point file", progress: Callable[[str], None] | None = None,
-                   bar: Callable[[int, int], None] | None = None) -> SecureCertificate:
+                   bar: Callable[[int, int], None] | None = None, skip_insecure: bool = False) -> SecureCertificate:
     """The N-1 secure box (uniform objective) for the outages ``contingencies`` ('n-1' or a file).
 
     Operating point: ``point`` if given, else the preventive SCOPF.  Raises
-    CertificateError naming every outage for which no box exists.
+    CertificateError naming every outage for which no box exists; with
+    ``skip_insecure`` those outages are left out of the joint box and listed
+    with status "insecure" and the reason.
     """
     t0 = time.perf_counter()
     net = case if isinstance(case, Network) else read_case(case)
@@ -168,8 +171,12 @@ def certify_secure(case: str | Path | Network, contingencies: str | Path, uncert
     outages, skipped = split_islanding(net, resolve_outages(net, contingencies))
     scopf = None
     if point is None:
-        scopf = secure_point(net, outages, policy, margin, progress)
+        scopf = secure_point(net, outages, policy, margin, progress, skip_insecure)
         op = scopf.point
+        gone = {label: why for label, why in scopf.excluded}
+        skipped += [OutageResult(o.label, o.kind, o.row, "insecure", 0.0, "", gone[o.label], 0.0)
+                    for o in outages if o.label in gone]
+        outages = [o for o in outages if o.label not in gone]
     else:
         op = point_from_json(net, point, point_source)
     t1 = time.perf_counter()
@@ -179,12 +186,12 @@ def certify_secure(case: str | Path | Network, contingencies: str | Path, uncert
     results = run_all(certify_outage, tasks, fanout, progress=bar, name="outage")
     t2 = time.perf_counter()
     bad = [r for r in results if r.status == "insecure"]
-    if bad:
+    if bad and not skip_insecure:
         raise CertificateError(f"no secure box: {len(bad)} outage(s) have no certified box at this operating point: "
                                + "; ".join(f"{r.label}: {r.detail}" for r in bad[:5]) + (" ..." if len(bad) > 5 else ""))
     fraction, limited_by, binding = float(base.certified_fraction), "intact network", base.binding
     for r in results:
-        if r.fraction < fraction:
+        if r.status != "insecure" and r.fraction < fraction:
             fraction, limited_by, binding = r.fraction, r.label, r.binding
     joint = base
     if fraction < base.certified_fraction:  # the intact box shrunk to the joint fraction (recentring allowed)
@@ -239,3 +246,53 @@ def validate_outages(res: SecureCertificate, samples: int = 50, seed: int = 0, c
         out[r.label] = validate_box(post_net, post.point, nsys.injections, cert.lower, cert.upper, nsys.policy, part,
                                     samples=samples, seed=seed, client=client)
     return out
+
+
+def certify_secure_cli(args, point: dict | None) -> int:
+    """``robustbox certify ... --contingencies``: run, print the summary, write the files; exit code 0."""
+    import sys
+
+    from .fanout import progress_bar
+    from .study import save_json
+    if args.objective != "uniform":
+        raise NetworkError(f"--contingencies supports the uniform objective only, not '{args.objective}'")
+    how = FanOut(serial=args.serial, scheduler=args.scheduler, workers=args.workers)
+    res = certify_secure(args.case, args.contingencies, args.uncertain, args.band, args.margin, point,
+                         args.policy or "distributed", CertifyOptions(max_fraction=args.max_fraction), how,
+                         args.point or "point file", progress=lambda text: print(text, file=sys.stderr),
+                         bar=progress_bar("outages"), skip_insecure=args.skip_insecure)
+    data = secure_to_json(res)
+    print_secure_summary(data)
+    if args.out:
+        save_json(data, args.out)
+        print(f"wrote {args.out}")
+    if args.report:
+        from .report import write_report
+        pair = tuple(x.strip() for x in args.slice.split(",")) if args.slice else None
+        print(f"wrote {write_report(res.intact, args.report, pair=pair)}")
+    return 0
+
+
+def print_secure_summary(data: dict) -> None:
+    """The command line's summary of an N-1 result file."""
+    sec = data["security"]
+    c = sec["counts"]
+    print(f"case: {data['case']}")
+    print(f"scenario: {data['scenario']}")
+    if "scopf" in sec:
+        s = sec["scopf"]
+        print(f"operating point: preventive SCOPF, margin {s['margin']:g}, {len(s['included_outages'])} outage copies, "
+              f"{s['rounds']} screening round(s), {s['time_s']:.1f} s")
+        print(f"  cost {s['objective_per_h']:.2f} $/h; plain OPF {s['plain_objective_per_h']:.2f} $/h "
+              f"(+{s['cost_increase_per_h']:.2f} $/h); OPF with the margin alone {s['margin_objective_per_h']:.2f} $/h")
+    print(f"outages: {sum(c.values())} listed: {c['screened']} screened (cannot bind), {c['certified']} certified "
+          f"in full, {c['islanding']} islanding (skipped), {c['insecure']} insecure (skipped)")
+    for r in sec["outages"]:
+        if r["status"] in ("islanding", "insecure"):
+            print(f"  {r['status']}: {r['outage']}: {r['detail']}")
+    print(f"status: {data['status']}   N-1 certified fraction of the band: {data['certified_fraction']:.4g} "
+          f"(intact network alone: {sec['intact_fraction']:.4g})")
+    print(f"every face limited by: {sec['limited_by']} ({sec['limited_binding']})")
+    t = data["timings_s"]
+    print(f"time: {t['operating_point_s']:.1f} s operating point, {t['outages_s']:.1f} s certificates "
+          f"({sec['fanout']}), {t['total_s']:.1f} s total")

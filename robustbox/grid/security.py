@@ -17,7 +17,7 @@ set-points, recourse after the outage; e.g. F. Capitanescu et al.,
 "State-of-the-art, challenges, and future trends in security constrained
 optimal power flow", Electric Power Systems Research 81, 2011) with
 contingency screening: solve with the outages found so far, check every
-outage by power flow against its (tightened) limits, add the violated ones
+outage by power flow against its limits tightened by half the margin, add the violated ones
 and solve again.
 """
 from __future__ import annotations
@@ -273,7 +273,11 @@ def outage_violation(net: Network, op: OperatingPoint, outage: Outage, policy: P
 # ------------------------------------------------------------------ SCOPF
 @dataclass(frozen=True)
 class SCOPFResult:
-    """A preventive SCOPF solution: pre-outage point, costs in $/h, screening rounds, wall time in s."""
+    """A preventive SCOPF solution: pre-outage point, costs in $/h, screening rounds, wall time in s.
+
+    ``included``: the outages with a network copy; ``excluded``: (outage, reason) left out
+    because no operating point exists after them (only with ``skip_insecure``).
+    """
 
     point: OperatingPoint
     objective_per_h: float
@@ -281,6 +285,7 @@ class SCOPFResult:
     plain_objective_per_h: float
     margin_objective_per_h: float
     included: tuple[str, ...]
+    excluded: tuple[tuple[str, str], ...]
     rounds: int
     time_s: float
 
@@ -350,60 +355,89 @@ def _solve_point(net: Network, model: pyo.ConcreteModel) -> tuple[OperatingPoint
                           np.array([pyo.value(model.qg[g]) for g in model.G]), obj), obj
 
 
+def no_point_after(net: Network, outage: Outage) -> bool:
+    """True when the post-outage network's own AC-OPF (free re-dispatch, no margin) finds no feasible point.
+
+    Then no pre-outage set-points can make the outage secure (as far as Ipopt, a local
+    solver, can tell: it reports local infeasibility).
+    """
+    try:
+        solve_opf(outage_network(net, outage), 0.0, compare_base=False)
+    except SolverError:
+        return True
+    return False
+
+
 def solve_scopf(net: Network, outages: Sequence[Outage], policy: Policy = "slack", margin: float = 0.1,
-                margin_gen: float | None = None, per_round: int = 8, max_rounds: int = 12,
-                progress=None, name_culprits: bool = True) -> SCOPFResult:
+                margin_gen: float | None = None, per_round: int = 30, max_rounds: int = 12,
+                progress=None, name_culprits: bool = True, skip_insecure: bool = False) -> SCOPFResult:
     """Preventive SCOPF with contingency screening (see module doc); ``outages`` must not island.
 
-    Each round adds up to ``per_round`` of the most violated outages.  Raises
-    SolverError naming the outage when adding it makes the problem infeasible
-    (no secure point with this margin), or when outages stay violated after
-    ``max_rounds`` rounds.  ``name_culprits`` False skips the search for the
-    outages to blame (one solve per included outage) and names them all.
+    Each round adds up to ``per_round`` of the most violated outages; an outage counts
+    as violated when its post-outage power flow breaks a limit tightened by half the
+    margin (the copies use the whole margin, so every outage keeps some room).  When a
+    round is infeasible, the outages just included whose post-outage network
+    has no feasible point at all (:func:`no_point_after`) are named; with
+    ``skip_insecure`` they are left out (listed in ``excluded``) and the round
+    is solved again.  Otherwise raises SolverError naming the outages to blame
+    (``name_culprits`` False skips that search: one solve per outage), or
+    naming those still violated after ``max_rounds`` rounds.
     """
     t0 = time.perf_counter()
     plain = solve_opf(net, 0.0, compare_base=False)
     point = plain.point
     included: list[Outage] = []
+    excluded: list[tuple[str, str]] = []
     margin_obj = None
-    for rounds in range(1, max_rounds + 1):
+    rounds = 0
+    while rounds < max_rounds:
         try:
             point, obj = _solve_point(net, _scopf_model(net, included, policy, margin, margin_gen, point))
         except SolverError as exc:
             if not included:
                 raise SolverError(f"{net.source}: no operating point with margin {margin:g} even before "
                                   f"any outage: {exc}") from None
-            raise SolverError(_infeasible_message(net, included, policy, margin, margin_gen, point, exc,
+            hopeless = [o for o in included if no_point_after(net, o)]
+            if hopeless and skip_insecure:
+                excluded += [(o.label, NO_POINT) for o in hopeless]
+                included = [o for o in included if o not in hopeless]
+                continue
+            raise SolverError(_infeasible_message(net, included, hopeless, policy, margin, margin_gen, point, exc,
                                                   name_culprits)) from None
+        rounds += 1
         if margin_obj is None:
             margin_obj = obj
         if progress:
             progress(f"SCOPF round {rounds}: {len(included)} outage(s) included, cost {obj:.2f} $/h")
-        names = {o.label for o in included}
-        worst = sorted((outage_violation(net, point, o, policy, margin, margin_gen) + (o,) for o in outages
-                        if o.label not in names), key=lambda item: item[0])
+        done = {o.label for o in included} | {label for label, _ in excluded}
+        worst = sorted((outage_violation(net, point, o, policy, margin / 2, margin_gen) + (o,) for o in outages
+                        if o.label not in done), key=lambda item: item[0])
         violated = [(m_, where, o) for m_, where, o in worst if m_ < 0]
         if not violated:
             return SCOPFResult(point, obj, margin, plain.objective_per_h, margin_obj,
-                               tuple(o.label for o in included), rounds, time.perf_counter() - t0)
+                               tuple(o.label for o in included), tuple(excluded), rounds, time.perf_counter() - t0)
         included += [o for _, _, o in violated[:per_round]]
     names = ", ".join(f"{o.label} ({where})" for _, where, o in violated[:5])
     raise SolverError(f"{net.source}: after {max_rounds} SCOPF rounds these outages still violate their limits "
                       f"with margin {margin:g}: {names}; try a smaller --margin")
 
 
-def _infeasible_message(net: Network, included: list[Outage], policy: Policy, margin: float,
+NO_POINT = "no feasible operating point after this outage (its own AC-OPF, free re-dispatch, is infeasible)"
+
+
+def _infeasible_message(net: Network, included: list[Outage], hopeless: list[Outage], policy: Policy, margin: float,
                         margin_gen: float | None, start: OperatingPoint, exc: Exception, name_culprits: bool) -> str:
-    """Name the outages that make the SCOPF infeasible on their own (each alone with the base)."""
-    culprits = []
-    for outage in included if name_culprits else []:
+    """Name the outages to blame: those with no point at all after them, else those infeasible alone with the base."""
+    culprits = [f"{o.label} ({NO_POINT})" for o in hopeless]
+    for outage in included if name_culprits and not hopeless else []:
         try:
             _solve_point(net, _scopf_model(net, [outage], policy, margin, margin_gen, start))
         except SolverError:
             culprits.append(outage.label)
     if culprits:
-        which = "these outages, each on its own: " + ", ".join(culprits)
+        which = "these outages, each on its own: " + "; ".join(culprits)
     else:
         which = "the outages " + ", ".join(o.label for o in included) + (" together" if name_culprits else "")
     return (f"{net.source}: no secure operating point found with margin {margin:g} under the '{policy}' policy: "
-            f"Ipopt finds the SCOPF locally infeasible with {which} ({exc})")
+            f"Ipopt finds the SCOPF locally infeasible with {which} ({exc})"
+            + ("; --skip-insecure leaves out outages after which no point exists" if hopeless else ""))
