@@ -369,24 +369,26 @@ def no_point_after(net: Network, outage: Outage) -> bool:
 
 
 def solve_scopf(net: Network, outages: Sequence[Outage], policy: Policy = "slack", margin: float = 0.1,
-                margin_gen: float | None = None, per_round: int = 30, max_rounds: int = 12,
+                margin_gen: float | None = None, per_round: int = 10, max_rounds: int = 12,
                 progress=None, name_culprits: bool = True, skip_insecure: bool = False) -> SCOPFResult:
     """Preventive SCOPF with contingency screening (see module doc); ``outages`` must not island.
 
     Each round adds up to ``per_round`` of the most violated outages; an outage counts
     as violated when its post-outage power flow breaks a limit tightened by half the
     margin (the copies use the whole margin, so every outage keeps some room).  When a
-    round is infeasible, the outages just included whose post-outage network
-    has no feasible point at all (:func:`no_point_after`) are named; with
-    ``skip_insecure`` they are left out (listed in ``excluded``) and the round
-    is solved again.  Otherwise raises SolverError naming the outages to blame
-    (``name_culprits`` False skips that search: one solve per outage), or
-    naming those still violated after ``max_rounds`` rounds.
+    round is infeasible: with ``skip_insecure`` the round's outages are added one at a
+    time and those that make it infeasible are left out, each listed in ``excluded``
+    with the reason (no point at all after it, :func:`no_point_after`; no preventive
+    point alone; or none together with those kept); otherwise SolverError names the
+    outages to blame (``name_culprits`` False skips that search: one solve per outage).
+    Also raises when outages are still violated after ``max_rounds`` rounds.
     """
     t0 = time.perf_counter()
     plain = solve_opf(net, 0.0, compare_base=False)
     point = plain.point
     included: list[Outage] = []
+    batch: list[Outage] = []  # the outages added in the last round
+    good = (point, plain.objective_per_h)  # the last solved round's point and cost
     excluded: list[tuple[str, str]] = []
     margin_obj = None
     rounds = 0
@@ -397,13 +399,21 @@ def solve_scopf(net: Network, outages: Sequence[Outage], policy: Policy = "slack
             if not included:
                 raise SolverError(f"{net.source}: no operating point with margin {margin:g} even before "
                                   f"any outage: {exc}") from None
-            hopeless = [o for o in included if no_point_after(net, o)]
-            if hopeless and skip_insecure:
-                excluded += [(o.label, NO_POINT) for o in hopeless]
-                included = [o for o in included if o not in hopeless]
-                continue
-            raise SolverError(_infeasible_message(net, included, hopeless, policy, margin, margin_gen, point, exc,
-                                                  name_culprits)) from None
+            if not skip_insecure:
+                hopeless = [o for o in included if no_point_after(net, o)]
+                raise SolverError(_infeasible_message(net, included, hopeless, policy, margin, margin_gen, point, exc,
+                                                      name_culprits)) from None
+            # add the last batch one outage at a time; leave out (and list) those that do not fit
+            included = [o for o in included if o not in batch]
+            point, obj = good
+            for o in batch:
+                try:
+                    point, obj = _solve_point(net, _scopf_model(net, [*included, o], policy, margin, margin_gen, point))
+                    included.append(o)
+                except SolverError:
+                    why = NO_POINT if no_point_after(net, o) else (NO_JOINT if included else NO_PREVENTIVE)
+                    excluded.append((o.label, why.format(margin=margin)))
+        good = (point, obj)
         rounds += 1
         if margin_obj is None:
             margin_obj = obj
@@ -416,28 +426,42 @@ def solve_scopf(net: Network, outages: Sequence[Outage], policy: Policy = "slack
         if not violated:
             return SCOPFResult(point, obj, margin, plain.objective_per_h, margin_obj,
                                tuple(o.label for o in included), tuple(excluded), rounds, time.perf_counter() - t0)
-        included += [o for _, _, o in violated[:per_round]]
+        batch = [o for _, _, o in violated[:per_round]]
+        included += batch
     names = ", ".join(f"{o.label} ({where})" for _, where, o in violated[:5])
     raise SolverError(f"{net.source}: after {max_rounds} SCOPF rounds these outages still violate their limits "
                       f"with margin {margin:g}: {names}; try a smaller --margin")
 
 
 NO_POINT = "no feasible operating point after this outage (its own AC-OPF, free re-dispatch, is infeasible)"
+NO_PREVENTIVE = ("no preventive secure point with margin {margin:g}: the SCOPF with this outage alone is infeasible "
+                 "(a point exists after it, but not from shared pre-outage set-points)")
+
+
+NO_JOINT = ("no preventive secure point with margin {margin:g} together with the outages already included "
+            "(feasible alone; outages are added in order of their violation)")
+
+
+def _feasible_alone(net: Network, outage: Outage, policy: Policy, margin: float, margin_gen: float | None,
+                    start: OperatingPoint, others: Sequence[Outage] = ()) -> bool:
+    """Whether the SCOPF with this outage (and ``others``) solves."""
+    try:
+        _solve_point(net, _scopf_model(net, [*others, outage], policy, margin, margin_gen, start))
+    except SolverError:
+        return False
+    return True
 
 
 def _infeasible_message(net: Network, included: list[Outage], hopeless: list[Outage], policy: Policy, margin: float,
                         margin_gen: float | None, start: OperatingPoint, exc: Exception, name_culprits: bool) -> str:
     """Name the outages to blame: those with no point at all after them, else those infeasible alone with the base."""
     culprits = [f"{o.label} ({NO_POINT})" for o in hopeless]
-    for outage in included if name_culprits and not hopeless else []:
-        try:
-            _solve_point(net, _scopf_model(net, [outage], policy, margin, margin_gen, start))
-        except SolverError:
-            culprits.append(outage.label)
+    culprits += [o.label for o in (included if name_culprits and not hopeless else [])
+                 if not _feasible_alone(net, o, policy, margin, margin_gen, start)]
     if culprits:
         which = "these outages, each on its own: " + "; ".join(culprits)
     else:
         which = "the outages " + ", ".join(o.label for o in included) + (" together" if name_culprits else "")
     return (f"{net.source}: no secure operating point found with margin {margin:g} under the '{policy}' policy: "
             f"Ipopt finds the SCOPF locally infeasible with {which} ({exc})"
-            + ("; --skip-insecure leaves out outages after which no point exists" if hopeless else ""))
+            + "; --skip-insecure leaves such outages out (and lists them)")
