@@ -16,7 +16,6 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Callable, Sequence
 
-import numpy as np
 
 from .certify import CertifyOptions, certify
 from .errors import CertificateError, NetworkError, OperatingPointError, SolverError
