@@ -66,10 +66,15 @@ def _cmd_certify(args: argparse.Namespace) -> int:
             point = json.loads(Path(args.point).read_text())
         except (OSError, json.JSONDecodeError) as exc:
             raise OperatingPointError(f"{args.point}: cannot read the operating point ({exc})") from None
-    res = certify_case(args.case, args.uncertain, args.band, args.objective, args.margin, point, args.policy,
-                       CertifyOptions(max_fraction=args.max_fraction), point_source=args.point or "point file")
-    data = result_to_json(res)
-    _print_summary(data)
+    if args.contingencies:
+        from .contingency import certify_secure_cli
+        data, res = certify_secure_cli(args, point, _fan_out(args))
+    else:
+        res = certify_case(args.case, args.uncertain, args.band, args.objective,
+                           0.1 if args.margin is None else args.margin, point, args.policy or "slack",
+                           CertifyOptions(max_fraction=args.max_fraction), point_source=args.point or "point file")
+        data = result_to_json(res)
+        _print_summary(data)
     if args.out:
         save_json(data, args.out)
         print(f"wrote {args.out}")
@@ -179,7 +184,8 @@ def _cmd_envelopes(args: argparse.Namespace) -> int:
         med, low = e.get("export_headroom_mw_median", float("nan")), e.get("export_headroom_mw_min", float("nan"))
         print(f"{b:>6} {e['certified']:>9} {e['failed']:>6} {med:>17.2f} {low:>14.2f}"
               + (f" {e['intervals_below_threshold']:>12}" if args.threshold_mw is not None else ""))
-    for name, path in {**run.files, "summary": out / "summary.json", "report": report}.items():
+    for name, path in {**run.files, "summary": out / "summary.json", "figure": out / "envelopes.png",
+                       "report": report}.items():
         print(f"wrote {path}")
     return EXIT_OK
 
@@ -202,13 +208,23 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--band", type=float, default=0.05, help="requested band (fraction; default 0.05)")
     c.add_argument("--objective", choices=["uniform", "hosting", "widths", "volume"], default="uniform",
                    help="uniform fraction of the band | hosting (upper ends, lower fixed) | widths | volume")
-    c.add_argument("--margin", type=float, default=0.1, help="limit margin of the operating-point OPF (default 0.1)")
+    c.add_argument("--margin", type=float, default=None,
+                   help="limit margin of the operating-point OPF (default 0.1; with --contingencies 0.1, 0.05, 0.02, "
+                        "0.01 are tried in turn)")
     c.add_argument("--point", help="operating point JSON (from 'robustbox opf') instead of the margin OPF")
-    c.add_argument("--policy", choices=["slack", "distributed"], default="slack", help="recourse policy")
+    c.add_argument("--policy", choices=["slack", "distributed"], default=None,
+                   help="recourse policy (default slack; with --contingencies distributed)")
     c.add_argument("--max-fraction", type=float, default=1.0, help="look beyond the band up to this fraction")
     c.add_argument("--out", help="write the result JSON here")
     c.add_argument("--report", help="write figures and report.html into this folder")
     c.add_argument("--slice", help="two injections for the report's 2-D slice, e.g. p[9],p[17] (default: first two)")
+    c.add_argument("--contingencies", help="n-1 (every in-service branch and generator) or a contingency file "
+                   "(docs/file-format.md): certify the box on every post-outage network too")
+    c.add_argument("--skip-insecure", action="store_true",
+                   help="with --contingencies: leave out (and list) outages after which no operating point exists")
+    c.add_argument("--scheduler", help="Dask scheduler address tcp://host:port for the outages (default: a LocalCluster)")
+    c.add_argument("--workers", type=int, help="LocalCluster worker processes (default min(2, CPUs))")
+    c.add_argument("--serial", action="store_true", help="certify the outages in this process, without Dask")
     c.set_defaults(func=_cmd_certify)
     k = sub.add_parser("check", help="independently validate a saved box by sampling power flows")
     k.add_argument("case")
