@@ -11,7 +11,7 @@ from robustbox.errors import CaseFileError
 from robustbox.fanout import FanOut
 from robustbox.grid.casefile import read_case
 from robustbox.grid.model import solve_opf
-from robustbox.grid.network import BRANCH_LIMIT_A, BRANCH_LIMIT_B, BRANCH_LIMIT_C
+from robustbox.grid.network import BRANCH_LIMIT_A, BRANCH_LIMIT_B, BRANCH_LIMIT_C, BRANCH_ON
 from robustbox.grid.security import all_outages, emergency_ratings, outage_network, read_contingencies
 from robustbox.study import point_to_json
 
@@ -43,7 +43,7 @@ def test_emergency_rating_rule():
     net.branch[2, [BRANCH_LIMIT_A, BRANCH_LIMIT_B, BRANCH_LIMIT_C]] = [100, 0, 0]
     assert emergency_ratings(net)[:3].tolist() == [120, 150, 100]  # the rule as stated in the issue
     out = outage_network(net, all_outages(net)[5])
-    assert out.branch[0, BRANCH_LIMIT_A] == 120 and out.branch[5, 10] == 0
+    assert out.branch[0, BRANCH_LIMIT_A] == 120 and out.branch[5, BRANCH_ON] == 0  # emergency rating set above; outage 5 takes row 5 out
 
 
 def test_post_outage_flows_match_pypower():
@@ -57,9 +57,11 @@ def test_post_outage_flows_match_pypower():
     outage = [o for o in all_outages(net) if o.label.startswith("branch 2-4 ")][0]
     post = post_outage_point(net, op, outage_network(net, outage), "slack").point
     ref = pypower.case30()
-    ref["branch"][outage.row, 10] = 0
+    ref["branch"][outage.row, BRANCH_ON] = 0  # the MATPOWER v2 layout: column 11 is the branch status
     res, ok = pypower.runpf(ref, pypower.ppoption(VERBOSE=0, OUT_ALL=0, PF_TOL=1e-12))
     assert ok
+    # columns 8 and 9 of PYPOWER's bus table are |V| (pu) and the angle (degrees), MATPOWER v2 layout;
+    # tolerances: common practice, no source (both Newton runs converge to 1e-12 pu mismatch)
     assert np.allclose(post.vm_pu, res["bus"][:, 7], atol=1e-7)
     assert np.allclose(np.degrees(post.va_rad - post.va_rad[0]), res["bus"][:, 8] - res["bus"][0, 8], atol=1e-6)
 
