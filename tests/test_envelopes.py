@@ -6,8 +6,10 @@ tests/test_grid.py; it shares no code with the certifier beyond the network data
 """
 from __future__ import annotations
 
-import os
+import json
 import signal
+import subprocess
+import sys
 import threading
 import time
 from pathlib import Path
@@ -136,31 +138,57 @@ def test_a_failed_interval_is_recorded_and_the_run_goes_on(demo, tmp_path, setti
     assert (entry["certified"], entry["failed"]) == (2, 1)
 
 
-def _kill_one_worker_when_started(client, table: Path, killed: list) -> None:
-    deadline = time.time() + 120
-    while time.time() < deadline:
-        if table.exists() and len(table.read_text(encoding="utf-8").splitlines()) > 1:
-            pids = list(client.run(os.getpid).values())
-            os.kill(pids[0], signal.SIGKILL)
-            killed.append(pids[0])
-            return
-        time.sleep(0.05)
+def _dask(*args: str, log: Path) -> subprocess.Popen:
+    """A Dask scheduler or worker in its own process (``python -m dask ...``), as on a real cluster."""
+    return subprocess.Popen([sys.executable, "-m", "dask", *args], stdout=subprocess.DEVNULL,
+                            stderr=log.open("w", encoding="utf-8"))
+
+
+def _wait_for(path: Path, what: str, seconds: float = 60) -> None:
+    deadline = time.time() + seconds
+    while not path.exists() and time.time() < deadline:
+        time.sleep(0.1)
+    assert path.exists(), f"{what} did not start within {seconds:.0f} s"
 
 
 def test_a_killed_worker_loses_nothing(demo, profile_path, settings, serial_run, tmp_path):
-    from distributed import Client, LocalCluster
-    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cluster, \
-            Client(cluster) as client:
-        killed: list = []
-        table = tmp_path / TABLE
-        spy = threading.Thread(target=_kill_one_worker_when_started, args=(client, table, killed), daemon=True)
+    """SIGKILL one of two worker processes once the first row is written; the other one finishes the run.
+
+    Scheduler and workers run as separate processes so that nothing but the run's own client lives in
+    this process (two clients in one process share Dask's event loop thread).
+    """
+    address_file = tmp_path / "scheduler.json"
+    procs = [_dask("scheduler", "--port", "0", "--no-dashboard", "--scheduler-file", str(address_file),
+                   log=tmp_path / "scheduler.log")]
+    try:
+        _wait_for(address_file, "the Dask scheduler")
+        procs += [_dask("worker", "--scheduler-file", str(address_file), "--nthreads", "1", "--no-nanny",
+                        "--no-dashboard", log=tmp_path / f"worker{i}.log") for i in range(2)]
+        address = json.loads(address_file.read_text(encoding="utf-8"))["address"]
+        table = tmp_path / "run" / TABLE
+        killed: list[int] = []
+
+        def kill_one_worker_after_the_first_row() -> None:
+            deadline = time.time() + 300
+            while time.time() < deadline:
+                if table.exists() and len(table.read_text(encoding="utf-8").splitlines()) > 1:
+                    procs[1].send_signal(signal.SIGKILL)
+                    killed.append(procs[1].pid)
+                    return
+                time.sleep(0.05)
+
+        spy = threading.Thread(target=kill_one_worker_after_the_first_row, daemon=True)
         spy.start()
-        run = run_envelopes(demo, read_profile(profile_path, demo), settings, tmp_path,
-                            FanOut(scheduler=cluster.scheduler_address))
+        run = run_envelopes(demo, read_profile(profile_path, demo), settings, tmp_path / "run",
+                            FanOut(scheduler=address))
         spy.join(timeout=5)
+    finally:
+        for proc in reversed(procs):
+            proc.kill()
+            proc.wait(timeout=30)
     assert killed, "no worker was killed: the run finished before the first row was written"
     assert run.computed == HOURS
-    assert _table(tmp_path) == _table(serial_run.folder)
+    assert _table(tmp_path / "run") == _table(serial_run.folder)
 
 
 @pytest.mark.parametrize("text, match", [
