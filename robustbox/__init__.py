@@ -10,7 +10,7 @@ report (:mod:`robustbox.report`) and command line (:mod:`robustbox.cli`).
 from .bounds import RemainderOptions
 from .certify import Certificate, CertifyOptions, ConditionCheck, LimitResponse, certify
 from .errors import (CaseFileError, CertificateError, ModelStructureError, NetworkError, OperatingPointError,
-                     QuadraticSystemError, RobustboxError, SolverError)
+                     QuadraticSystemError, RobustboxError, RobustboxNote, SolverError)
 from .quadratic import QuadraticMap, QuadraticSystem, UncertainSet
 from .transform import InjectionBox  # registers the transformation robustbox.injection_box
 
@@ -19,5 +19,5 @@ __version__ = "0.1.0"
 __all__ = [
     "CaseFileError", "Certificate", "InjectionBox", "CertificateError", "CertifyOptions", "ConditionCheck", "LimitResponse", "ModelStructureError",
     "NetworkError", "OperatingPointError", "QuadraticMap", "QuadraticSystem", "QuadraticSystemError",
-    "RemainderOptions", "RobustboxError", "SolverError", "UncertainSet", "certify",
+    "RemainderOptions", "RobustboxError", "RobustboxNote", "SolverError", "UncertainSet", "certify",
 ]

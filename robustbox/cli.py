@@ -10,12 +10,13 @@ import argparse
 import json
 import sys
 import time
+import warnings
 from importlib import resources
 from pathlib import Path
 
 from .certify import CertifyOptions
 from .errors import (CaseFileError, CertificateError, ModelStructureError, NetworkError, OperatingPointError,
-                     QuadraticSystemError, RobustboxError, SolverError)
+                     QuadraticSystemError, RobustboxError, RobustboxNote, SolverError)
 from .grid.casefile import read_case
 
 EXIT_OK, EXIT_VIOLATION, EXIT_INPUT, EXIT_SOLVE = 0, 1, 2, 3
@@ -268,9 +269,24 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+def _show_note(message, category, filename, lineno, file=None, line=None) -> None:
+    """Print a RobustboxNote as one line; other warnings the usual way."""
+    if issubclass(category, RobustboxNote):
+        print(f"robustbox: note: {message}", file=sys.stderr)
+    else:
+        print(warnings.formatwarning(message, category, filename, lineno, line), end="", file=sys.stderr)
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    with warnings.catch_warnings():
+        warnings.simplefilter("default", RobustboxNote)
+        warnings.showwarning = _show_note
+        return _run(args)
+
+
+def _run(args: argparse.Namespace) -> int:
     try:
         return args.func(args)
     except (CaseFileError, NetworkError, OperatingPointError, QuadraticSystemError, ModelStructureError) as exc:

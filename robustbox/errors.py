@@ -46,3 +46,10 @@ class ModelStructureError(RobustboxError):
 
 class SolverError(RobustboxError):
     """Ipopt (or another solver) did not return a usable solution."""
+
+
+class RobustboxNote(UserWarning):
+    """Something robustbox changed or ignored while reading its input (one line, names file and line).
+
+    Issued with :func:`warnings.warn`; the command line prints it as ``robustbox: note: ...``.
+    """

@@ -26,7 +26,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 from pyomo.core.expr.visitor import identify_mutable_parameters, identify_variables
-from pyomo.environ import Block, Constraint, Objective, Var, maximize
+from pyomo.environ import Block, Constraint, Objective, maximize
 from pyomo.repn.standard_repn import generate_standard_repn
 
 from .errors import ModelStructureError

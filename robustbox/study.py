@@ -17,13 +17,13 @@ from .certify import Certificate, CertifyOptions, Objective, certify
 from .errors import NetworkError, OperatingPointError
 from .grid.casefile import read_case
 from .grid.model import OPFResult, solve_opf
-from .grid.network import BUS_NUMBER, GEN_AT, GEN_P, GEN_Q_HIGH, GEN_Q_LOW, GEN_V_SET, Network
+from .grid.network import BUS_NUMBER, GEN_AT, GEN_P, GEN_Q_LOW, GEN_V_SET, Network
 from .grid.powerflow import newton_power_flow
 from .grid.system import (Injection, NetworkSystem, OperatingPoint, build_system, largest_load_pq_buses,
-                          load_injections, site_injections)
+                          load_injections, recourse_record, recourse_roles, site_injections, split_q)
 from .validate import ValidationReport, validate_box
 
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2  # 2: the box file states the complete recourse policy ("recourse")
 
 
 @dataclass(eq=False)
@@ -107,27 +107,29 @@ def point_from_json(net: Network, data: dict, source: str = "point file") -> Ope
 
 
 def power_flow_point(net: Network) -> OperatingPoint:
-    s, pv, pq = net.bus_kinds()
+    """The power flow of the case's set-points (generator P and |V|, loads), read by the slack policy.
+
+    The slack bus's units share its output beyond their set-points in proportion to their P ranges;
+    per-unit Q follows :func:`~robustbox.grid.system.split_q`.
+    """
+    roles = recourse_roles(net, "slack")
     gb = net.gen_bus_idx()
     on = net.gen_on
     sg = np.zeros(net.n_bus, dtype=complex)
-    fixed_q = np.where(net.gen[on, GEN_Q_HIGH] == net.gen[on, GEN_Q_LOW], net.gen[on, GEN_Q_LOW], 0.0)  # no reactive range
+    fixed_q = np.where(roles.fixed_q, net.gen[on, GEN_Q_LOW], 0.0)
     np.add.at(sg, gb, (net.gen[on, GEN_P] + 1j * fixed_q) / net.base_mva)
     vm = np.ones(net.n_bus)
     vm[gb] = net.gen[on, GEN_V_SET]
-    res = newton_power_flow(net.admittance()[0], sg - net.load_pu(), vm.astype(complex), s, pv, pq)
+    res = newton_power_flow(net.admittance()[0], sg - net.load_pu(), vm.astype(complex), roles.slack, roles.pv,
+                            roles.pq)
     if not res.converged:
         raise OperatingPointError(f"{net.source}: the power flow for the given set-points does not converge "
                                   f"(mismatch {res.mismatch_pu:.3g} pu)")
     v = res.voltage
     s_bus = v * np.conj(net.admittance()[0] @ v) + net.load_pu()
-    pg, qg = net.gen[on, GEN_P] / net.base_mva, np.zeros(len(on))
-    for b in np.unique(gb):  # share the bus's Q (and slack P) among its generators equally
-        ks = np.flatnonzero(gb == b)
-        qg[ks] = s_bus[b].imag / len(ks)
-        if b == s:
-            pg[ks] = s_bus[b].real / len(ks)
-    return OperatingPoint(np.abs(v), np.angle(v), pg, qg, None)
+    pg = net.gen[on, GEN_P] / net.base_mva
+    pg = pg + roles.share * (s_bus[roles.slack].real - sg[roles.slack].real)
+    return OperatingPoint(np.abs(v), np.angle(v), pg, split_q(net, roles, s_bus.imag), None)
 
 
 def certify_case(case: str | Path | Network, uncertain: str | Sequence[int] = "loads", band: float = 0.05,
@@ -166,12 +168,11 @@ def result_to_json(res: CaseCertificate) -> dict:
                     "requested_lower": float(nominal - inj.lower_pu * base),
                     "requested_upper": float(nominal + inj.upper_pu * base)})
     pt = point_to_json(net, op)
-    pt.update({"slack_bus": int(net.bus[nsys.slack, BUS_NUMBER]), "policy": nsys.describe_policy(),
-               "policy_kind": nsys.policy, "participation": [float(x) for x in nsys.participation]})
+    pt.update({"slack_bus": int(net.bus[nsys.slack, BUS_NUMBER]), "policy": nsys.describe_policy()})
     out = {
         "format_version": FORMAT_VERSION, "case": str(net.source), "base_mva": base, "scenario": res.scenario,
         "objective": cert.objective, "status": cert.status, "certified_fraction": min(cert.certified_fraction, 1e12),
-        "box": box, "operating_point": pt, "binding_limit": cert.binding, "worst_margin": cert.worst_margin,
+        "box": box, "operating_point": pt, "recourse": recourse_record(net, nsys.roles, op), "binding_limit": cert.binding, "worst_margin": cert.worst_margin,
         "timings_s": cert.timings_s,
         "caution": CAUTION,
     }
@@ -188,29 +189,44 @@ CAUTION = ("Results depend on the model data (impedances, limits, the operating 
 
 def check_box(net: Network, data: dict, samples: int = 300, seed: int = 0, source: str = "box file",
               progress=None) -> ValidationReport:
-    """Independent sampling validation of a saved result file against ``net``."""
+    """Independent sampling validation of a saved result file against ``net``.
+
+    The recourse policy is read from the file's ``recourse`` record alone.  A file of another format
+    version, for another case, or with an entry whose bounds are not numbers around the nominal
+    value is refused with the entry named.
+    """
+    if not isinstance(samples, int) or samples < 1:
+        raise NetworkError(f"samples must be a whole number ≥ 1, got {samples}")
+    if not isinstance(data, dict) or data.get("format_version") != FORMAT_VERSION:
+        got = data.get("format_version") if isinstance(data, dict) else None
+        raise OperatingPointError(f"{source}: format_version {got!r}; this robustbox reads version {FORMAT_VERSION} "
+                                  "(certify again to write it)")
     try:
+        record = data["recourse"]
+        units = {int(u["index"]) for u in record["units"]}
+        if units != {int(g) for g in net.gen_on} or any(e["bus"] not in net.bus_index for e in record["voltage_buses"]):
+            raise OperatingPointError(f"{source}: the box was made for another case ({data.get('case')}) or with "
+                                      f"other generators in service than {net.source}")
         op = point_from_json(net, data["operating_point"], source)
-        entries = data["box"]
         base = net.base_mva
         injections, lower, upper = [], [], []
-        for e in entries:
+        for k, e in enumerate(data["box"]):
             q = e["quantity"]
             if q not in ("p", "q"):
-                raise OperatingPointError(f"{source}: box entry at bus {e['bus']}: quantity must be p or q")
-            nominal = float(e["nominal"])
-            injections.append(Injection(int(e["bus"]), q, max(nominal - float(e["lower"]), 0.0) / base,
-                                        max(float(e["upper"]) - nominal, 0.0) / base))
-            lower.append((float(e["lower"]) - nominal) / base)
-            upper.append((float(e["upper"]) - nominal) / base)
-        kind = data["operating_point"].get("policy_kind", "slack")
+                raise OperatingPointError(f"{source}: box entry {k} at bus {e['bus']}: quantity must be p or q")
+            nominal, lo, up = float(e["nominal"]), float(e["lower"]), float(e["upper"])
+            if not (np.isfinite(nominal) and np.isfinite(lo) and np.isfinite(up) and lo <= nominal <= up):
+                raise OperatingPointError(f"{source}: box entry {k} ({q} at bus {e['bus']}): needs finite numbers "
+                                          f"lower ≤ nominal ≤ upper, got {lo:g} / {nominal:g} / {up:g}")
+            if e["bus"] not in net.bus_index:
+                raise OperatingPointError(f"{source}: box entry {k} at bus {e['bus']}, which is not in the network: "
+                                          f"the box was made for another case ({data.get('case')})")
+            injections.append(Injection(int(e["bus"]), q, (nominal - lo) / base, (up - nominal) / base))
+            lower.append((lo - nominal) / base)
+            upper.append((up - nominal) / base)
     except (KeyError, TypeError, ValueError) as exc:
         raise OperatingPointError(f"{source}: not a robustbox result file (missing or bad field: {exc})") from None
-    for inj in injections:
-        if inj.bus not in net.bus_index:
-            raise NetworkError(f"{source}: box entry at bus {inj.bus}, which is not in the network")
-    part = np.asarray(data["operating_point"].get("participation", []), dtype=float) if kind == "distributed" else None
-    return validate_box(net, op, injections, np.array(lower), np.array(upper), kind, part, samples=samples,
+    return validate_box(net, op, injections, np.array(lower), np.array(upper), record, samples=samples,
                         seed=seed, progress=progress)
 
 

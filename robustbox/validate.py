@@ -1,12 +1,16 @@
 """Independent sampling validation of a box of injections on a network.
 
 For box vertices and random points inside, run a Newton power flow (polar,
-:mod:`robustbox.grid.powerflow`) from the operating point with the same
-recourse policy and check every limit on the exact quantities: |V| at every
-bus, generator P and Q, branch apparent power |S| ≤ rateA at both ends (the
-circle, not the polygon the certificate uses) and angle differences.  It
-shares no code with the certificate beyond the network data; a
-non-converged power flow counts as a violation.
+:mod:`robustbox.grid.powerflow`) from the operating point with the recourse
+policy as the box file states it (which buses hold |V|, each unit's share of
+the balance) and check every limit on the exact quantities: |V| at every bus,
+every unit's own P range, generator Q per bus (units share it in proportion
+to their Q ranges, so the bus total is in range exactly when each unit is),
+branch apparent power |S| ≤ rateA at both ends (the circle, not the polygon
+the certificate uses) and angle differences.  It shares no code with the
+certificate beyond the network data and the policy record; a non-converged
+power flow counts as a violation.  The Newton tolerance is raised to the
+rounding floor of the admittances (tiny impedances make |Y| large).
 """
 from __future__ import annotations
 
@@ -16,9 +20,10 @@ from typing import Sequence
 
 import numpy as np
 
-from .grid.network import BRANCH_ANGLE_HIGH, BRANCH_ANGLE_LOW, BUS_NUMBER, BRANCH_LIMIT_A, BUS_V_HIGH, BUS_V_LOW, Network
+from .grid.network import BRANCH_ANGLE_HIGH, BRANCH_ANGLE_LOW, BUS_NUMBER, GEN_AT, BRANCH_LIMIT_A, BUS_V_HIGH, BUS_V_LOW, Network
 from .grid.powerflow import newton_power_flow
-from .grid.system import Injection, OperatingPoint
+from .errors import OperatingPointError
+from .grid.system import Injection, OperatingPoint, recourse_record, recourse_roles
 
 
 @dataclass
@@ -41,26 +46,71 @@ class ValidationReport:
         return self.violations == 0 and self.not_converged == 0
 
 
+@dataclass(frozen=True)
+class Recourse:
+    """The recourse policy read from a policy record (the box file's ``recourse``): bus indices, unit shares."""
+
+    distributed: bool
+    slack: int
+    pv: np.ndarray
+    pq: np.ndarray
+    share: np.ndarray  # per in-service unit (net.gen_on order), sums to 1
+
+
+def read_recourse(net: Network, record: dict, source: str = "box file") -> Recourse:
+    """Check a policy record against ``net`` and read it (errors name the entry at fault)."""
+    try:
+        kind = record["policy"]
+        index = net.bus_index
+        ref = record["angle_reference_bus"]
+        holds = [e["bus"] for e in record["voltage_buses"]]
+        shares = {int(u["index"]): float(u["balance_share"]) for u in record["units"]}
+    except (KeyError, TypeError, ValueError) as exc:
+        raise OperatingPointError(f"{source}: the recourse record is incomplete (missing or bad field: {exc})") from None
+    if kind not in ("slack", "distributed"):
+        raise OperatingPointError(f"{source}: recourse policy '{kind}' is neither 'slack' nor 'distributed'")
+    for b in [ref, *holds]:
+        if b not in index:
+            raise OperatingPointError(f"{source}: recourse names bus {b}, which is not in the network")
+    missing = [int(g) for g in net.gen_on if int(g) not in shares]
+    if missing:
+        raise OperatingPointError(f"{source}: recourse lists no unit for in-service generator rows {missing[:10]} "
+                                  "(the box was made for another case or another set of units in service)")
+    share = np.array([shares[int(g)] for g in net.gen_on])
+    if np.any(~np.isfinite(share)) or np.any(share < 0) or abs(share.sum() - 1.0) > 1e-9:
+        raise OperatingPointError(f"{source}: the units' balance shares must be ≥ 0 and sum to 1 "
+                                  f"(they sum to {share.sum():.12g})")
+    slack = index[ref]
+    held = np.zeros(net.n_bus, dtype=bool)
+    held[[index[b] for b in holds]] = True
+    if not held[slack]:
+        raise OperatingPointError(f"{source}: the angle reference bus {ref} must hold its voltage")
+    held[slack] = False
+    return Recourse(kind == "distributed", slack, np.flatnonzero(held),
+                    np.flatnonzero(~held & (np.arange(net.n_bus) != slack)), share)
+
+
 class _Limits:
     """The network data the limit checks need, computed once per network."""
 
-    def __init__(self, net: Network, check_p: np.ndarray) -> None:
+    def __init__(self, net: Network) -> None:
         self.net, self.base = net, net.base_mva
-        lim = net.gen_limits_pu()
+        self.lim = net.gen_limits_pu()
         gb = net.gen_bus_idx()
         self.agg = {}
-        for key in lim:
+        for key in self.lim:
             arr = np.zeros(net.n_bus)
-            np.add.at(arr, gb, lim[key])
+            np.add.at(arr, gb, self.lim[key])
             self.agg[key] = arr
         self.gen_buses = np.unique(gb)
-        self.p_buses = np.flatnonzero(check_p)
+        self.units = [f"generator row {net.file_row('gen', int(g))} at bus {int(b)}"
+                      for g, b in zip(net.gen_on, net.gen[net.gen_on, GEN_AT])]
         _, self.yf, self.yt = net.admittance()
         self.f, self.t = net.branch_ends()
         self.br = net.branch[net.branch_on]
         self.rated = self.br[:, BRANCH_LIMIT_A] > 0
 
-    def margins(self, v: np.ndarray, sg_bus: np.ndarray) -> dict[str, tuple[float, str]]:
+    def margins(self, v: np.ndarray, sg_bus: np.ndarray, pg_unit: np.ndarray) -> dict[str, tuple[float, str]]:
         """Worst margin and the element that has it, per limit class, at one solved state."""
         net, base, agg, br = self.net, self.base, self.agg, self.br
         out: dict[str, tuple[float, str]] = {}
@@ -72,11 +122,9 @@ class _Limits:
         mq = np.minimum(agg["qmax"][buses] - sg_bus.imag[buses], sg_bus.imag[buses] - agg["qmin"][buses]) * base
         i = int(np.argmin(mq))
         out["gen_q_mvar"] = (float(mq[i]), f"bus {int(net.bus[buses[i], BUS_NUMBER])} Qgen = {sg_bus.imag[buses[i]] * base:.3f} Mvar")
-        pb = self.p_buses
-        if len(pb):
-            mp = np.minimum(agg["pmax"][pb] - sg_bus.real[pb], sg_bus.real[pb] - agg["pmin"][pb]) * base
-            i = int(np.argmin(mp))
-            out["gen_p_mw"] = (float(mp[i]), f"bus {int(net.bus[pb[i], BUS_NUMBER])} Pgen = {sg_bus.real[pb[i]] * base:.3f} MW")
+        mp = np.minimum(self.lim["pmax"] - pg_unit, pg_unit - self.lim["pmin"]) * base
+        i = int(np.argmin(mp))
+        out["gen_p_mw"] = (float(mp[i]), f"{self.units[i]} Pgen = {pg_unit[i] * base:.3f} MW")
         f, t, rate = self.f, self.t, br[:, BRANCH_LIMIT_A]
         if np.any(self.rated):
             sf = np.abs(v[f] * np.conj(self.yf @ v)) * base
@@ -92,6 +140,12 @@ class _Limits:
             i = int(np.argmin(ma))
             out["angle_deg"] = (float(ma[i]), f"branch {int(br[i, 0])}-{int(br[i, 1])} angle difference {dth[i]:.3f} deg")
         return out
+
+
+def rounding_floor_pu(ybus) -> float:
+    """Mismatch a converged power flow cannot go below: a few ulps of the largest |Y| row sum (|V| ≈ 1 pu)."""
+    row_sum = np.asarray(abs(ybus).sum(axis=1)).max(initial=0.0)
+    return float(100.0 * np.finfo(float).eps * row_sum)
 
 
 def sample_points(lower: np.ndarray, upper: np.ndarray, samples: int, max_vertices: int = 10,
@@ -112,53 +166,53 @@ def sample_points(lower: np.ndarray, upper: np.ndarray, samples: int, max_vertic
 
 
 def evaluate_points(net: Network, op: OperatingPoint, injections: Sequence[Injection], points: np.ndarray,
-                    policy: str = "slack", participation: np.ndarray | None = None, tol: float = 1e-9,
+                    policy: str | dict = "slack", participation: np.ndarray | None = None, tol: float = 1e-9,
                     progress=None, client=None) -> list[dict[str, tuple[float, str]] | None]:
     """Power flow and limit margins at each point (rows: injection deviations, per unit).
 
-    Returns per point the worst margin per limit class, or None where the
-    power flow did not converge.  With a Dask ``client`` the points are fanned
-    out over its workers in chunks.
+    ``policy`` is a policy record (the box file's ``recourse``, see docs/file-format.md) or the name
+    of a policy ("slack", "distributed" with ``participation``), whose record is then derived from
+    the network.  Returns per point the worst margin per limit class, or None where the power flow
+    did not converge.  With a Dask ``client`` the points are fanned out over its workers in chunks.
     """
+    record = policy if isinstance(policy, dict) else recourse_record(net, recourse_roles(net, policy, participation), op)  # type: ignore[arg-type]
     if client is not None and len(points) > 1:
         chunks = np.array_split(np.atleast_2d(points), min(len(points), 4 * max(len(client.ncores()), 1)))
         futures = client.map(evaluate_points, [net] * len(chunks), [op] * len(chunks), [list(injections)] * len(chunks),
-                             chunks, [policy] * len(chunks), [participation] * len(chunks), [tol] * len(chunks),
-                             pure=False)
+                             chunks, [record] * len(chunks), [None] * len(chunks), [tol] * len(chunks), pure=False)
         out = []
         for part in client.gather(futures):
             out.extend(part)
         return out
+    rec = read_recourse(net, record)
     ybus = net.admittance()[0]
-    s, pv, pq = net.bus_kinds()
+    tol = max(tol, rounding_floor_pu(ybus))
     index = net.bus_index
     gb = net.gen_bus_idx()
     sg0 = np.zeros(net.n_bus, dtype=complex)
     np.add.at(sg0, gb, op.pg_pu + 1j * op.qg_pu)
     sd0 = net.load_pu()
-    bus_part = None
-    check_p = np.zeros(net.n_bus, dtype=bool)
-    if policy == "distributed":
-        bus_part = np.zeros(net.n_bus)
-        np.add.at(bus_part, gb, np.asarray(participation, dtype=float))
-        check_p = bus_part > 0
-    else:
-        check_p[s] = True
+    bus_share = None
+    if rec.distributed:
+        bus_share = np.zeros(net.n_bus)
+        np.add.at(bus_share, gb, rec.share)
     rows = np.array([index[i.bus] for i in injections], dtype=np.int64)
     is_q = np.array([i.quantity == "q" for i in injections], dtype=bool)
-    limits = _Limits(net, check_p)
+    limits = _Limits(net)
     out: list[dict[str, tuple[float, str]] | None] = []
     for k, p in enumerate(np.atleast_2d(points)):
         delta = np.zeros(net.n_bus, dtype=complex)
         np.add.at(delta, rows, np.where(is_q, 1j * p, p))
-        res = newton_power_flow(ybus, sg0 - sd0 + delta, op.voltage, s, pv, pq, bus_part, tol=tol)
+        res = newton_power_flow(ybus, sg0 - sd0 + delta, op.voltage, rec.slack, rec.pv, rec.pq, bus_share, tol=tol)
         if progress is not None:
             progress(k + 1, len(points))
         if not res.converged:
             out.append(None)
             continue
-        s_calc = res.voltage * np.conj(ybus @ res.voltage)
-        out.append(limits.margins(res.voltage, s_calc + sd0 - delta))
+        sg_bus = res.voltage * np.conj(ybus @ res.voltage) + sd0 - delta
+        # the change of total generation: α, or what the slack bus produces beyond its scheduled P
+        change = res.alpha_pu if rec.distributed else sg_bus.real[rec.slack] - sg0.real[rec.slack]
+        out.append(limits.margins(res.voltage, sg_bus, op.pg_pu + rec.share * change))
     return out
 
 
@@ -166,7 +220,7 @@ VIOLATION_TOL = 1e-7  # numerical noise of a converged power flow (common practi
 
 
 def validate_box(net: Network, op: OperatingPoint, injections: Sequence[Injection], lower_pu: np.ndarray,
-                 upper_pu: np.ndarray, policy: str = "slack", participation: np.ndarray | None = None,
+                 upper_pu: np.ndarray, policy: str | dict = "slack", participation: np.ndarray | None = None,
                  samples: int = 300, max_vertices: int = 10, seed: int = 0, tol: float = 1e-9,
                  progress=None, client=None, extra_points: np.ndarray | None = None) -> ValidationReport:
     """Sample the box [lower_pu, upper_pu] of injection deviations and check every limit.
@@ -181,13 +235,16 @@ def validate_box(net: Network, op: OperatingPoint, injections: Sequence[Injectio
         points = np.vstack([np.asarray(extra_points, dtype=float), points])
         n_vert += len(extra_points)
     results = evaluate_points(net, op, injections, points, policy, participation, tol, progress, client)
+    floor = rounding_floor_pu(net.admittance()[0])
+    floor_note = (f" (tolerance raised to {floor:.2g} pu, the rounding floor of this network's admittances)"
+                  if floor > tol else "")
     report = ValidationReport(len(points), n_vert, 0, 0)
     worst: dict[str, float] = {}
     for k, margins in enumerate(results):
         if margins is None:
             report.not_converged += 1
             if len(report.examples) < 10:
-                report.examples.append(f"point {k}: power flow did not converge")
+                report.examples.append(f"point {k}: power flow did not converge{floor_note}")
             continue
         bad = False
         for key, (m, where) in margins.items():

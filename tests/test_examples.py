@@ -17,7 +17,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "examples"))
 import day_ahead_dispatch as example  # noqa: E402
 
 from robustbox.grid.network import GEN_AT  # noqa: E402
-from robustbox.grid.system import Injection, OperatingPoint  # noqa: E402
+from robustbox.grid.system import Injection  # noqa: E402
 from robustbox.transform import box_of  # noqa: E402
 
 

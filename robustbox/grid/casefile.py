@@ -9,6 +9,16 @@ comments (``%``) are ignored, numbers may use any float syntax (``1e-3``,
 fields (``mpc.bus_name`` ...) are skipped.  robustbox's own optional field
 ``mpc.injection_site = [bus kind capacity_MW; ...]`` (kind 1 wind, 2 solar)
 marks renewable injection sites.  Errors name the file and line.
+
+Read as the format documents it (MATPOWER User's Manual, Appendix B), in
+:meth:`Network.from_tables`: isolated buses (type 4) are dropped together with
+every branch touching them and every generator and injection site at them,
+with one note (:class:`~robustbox.grid.network.RobustboxNote`, a warning) per
+group of isolated buses; the network keeps each remaining row's file line and
+row number for messages.  A branch with angmin = angmax = 0 (or angmin ≤ −360,
+angmax ≥ 360) has no angle-difference limit and is stored as −360 / 360.  NaN
+in a column robustbox does not read (bus area, base kV and loss zone, generator
+machine base) is noted once per column; elsewhere it is an error naming the line.
 """
 from __future__ import annotations
 
@@ -37,9 +47,10 @@ def _strip_comment(line: str) -> str:
     return "".join(out)
 
 
-def _parse_number(token: str, path: str, line: int) -> float:
+def _parse_number(token: str, path: str, line: int, column: int | None = None) -> float:
     if not _NUMBER.match(token):
-        raise CaseFileError(path, line, f"expected a number, found '{token[:40]}'")
+        where = f" (column {column})" if column is not None else ""
+        raise CaseFileError(path, line, f"expected a number, found '{token[:40]}'{where}")
     return float(token.lower().replace("d", "e"))
 
 
@@ -66,7 +77,7 @@ def _parse_matrix(lines: list[tuple[int, str]], start: int, first: str, path: st
     rows: list[list[float]] = []
     for lineno, chunk in text_rows:
         tokens = [t for t in re.split(r"[\s,]+", chunk.strip()) if t]
-        rows.append([_parse_number(t, path, lineno) for t in tokens])
+        rows.append([_parse_number(t, path, lineno, c + 1) for c, t in enumerate(tokens)])
     if not rows:
         return np.zeros((0, _MIN_COLS.get(name, 0))), i, []
     width = max(len(r) for r in rows)

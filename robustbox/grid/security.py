@@ -32,14 +32,14 @@ import pyomo.environ as pyo
 import scipy.sparse as sp
 from scipy.sparse.csgraph import connected_components
 
-from ..errors import CaseFileError, NetworkError, SolverError
+from ..errors import CaseFileError, SolverError
 from ..solve import solve_model
 from .model import _tighten, build_opf, solve_opf
 from .network import (BRANCH_ANGLE_HIGH, BRANCH_ANGLE_LOW, BRANCH_FROM, BRANCH_LIMIT_A, BRANCH_LIMIT_B, BRANCH_LIMIT_C,
                       BRANCH_ON, BRANCH_TO, BUS_KIND, BUS_NUMBER, BUS_V_HIGH, BUS_V_LOW, GEN_AT, GEN_ON, GEN_P_HIGH, GEN_P_LOW,
                       GEN_Q_HIGH, GEN_Q_LOW, KIND_SLACK, Network)
 from .powerflow import newton_power_flow
-from .system import OperatingPoint, Policy
+from .system import OperatingPoint, Policy, recourse_roles, split_q
 
 
 @dataclass(frozen=True)
@@ -176,12 +176,9 @@ def islanded_buses(net: Network) -> list[int]:
 
 
 def default_participation(net: Network) -> np.ndarray:
-    """Participation of the in-service generators in the distributed policy: their P range, summing to 1."""
-    lim = net.gen_limits_pu()
-    part = lim["pmax"] - lim["pmin"]
-    if part.sum() <= 0:
-        raise NetworkError(f"{net.name}: no in-service generator has a P range to share the balance")
-    return part / part.sum()
+    """Participation of the in-service generators in the distributed policy (their P range, summing to 1;
+    fixed-P units take none): the shares of :func:`~robustbox.grid.system.recourse_roles`."""
+    return recourse_roles(net, "distributed").share
 
 
 def carried_point(net: Network, op: OperatingPoint, out: Network) -> OperatingPoint:
@@ -206,30 +203,24 @@ def post_outage_point(net: Network, op: OperatingPoint, out: Network, policy: Po
     under "distributed"), |V| at voltage-controlling buses, Q of fixed-Q generators.
     """
     pre = carried_point(net, op, out)
-    s, pv, pq = out.bus_kinds()
+    roles = recourse_roles(out, policy)
     gb = out.gen_bus_idx()
     sched = np.zeros(out.n_bus, dtype=complex)
     np.add.at(sched, gb, pre.pg_pu + 1j * pre.qg_pu)
-    part = default_participation(out) if policy == "distributed" else None
     bus_part = None
-    if part is not None:
+    if policy == "distributed":
         bus_part = np.zeros(out.n_bus)
-        np.add.at(bus_part, gb, part)
+        np.add.at(bus_part, gb, roles.share)
     ybus = out.admittance()[0]
-    res = newton_power_flow(ybus, sched - out.load_pu(), pre.voltage, s, pv, pq, bus_part)
+    res = newton_power_flow(ybus, sched - out.load_pu(), pre.voltage, roles.slack, roles.pv, roles.pq, bus_part)
     if not res.converged:
         return PostOutagePoint(None, res.mismatch_pu, res.alpha_pu)
     v = res.voltage
     s_bus = v * np.conj(ybus @ v) + out.load_pu()
-    pg = pre.pg_pu + res.alpha_pu * part if part is not None else pre.pg_pu.copy()
-    qg = np.zeros(len(gb))
-    for b in np.unique(gb):  # the bus's Q (and the slack bus's P) shared equally among its generators
-        ks = np.flatnonzero(gb == b)
-        qg[ks] = s_bus[b].imag / len(ks)
-        if part is None and b == s:
-            pg[ks] = s_bus[b].real / len(ks)
-    return PostOutagePoint(OperatingPoint(np.abs(v), np.angle(v), pg, qg, op.objective_per_h), res.mismatch_pu,
-                           res.alpha_pu)
+    change = res.alpha_pu if bus_part is not None else s_bus[roles.slack].real - sched[roles.slack].real
+    pg = pre.pg_pu + roles.share * change
+    return PostOutagePoint(OperatingPoint(np.abs(v), np.angle(v), pg, split_q(out, roles, s_bus.imag),
+                                          op.objective_per_h), res.mismatch_pu, res.alpha_pu)
 
 
 def tightened_network(net: Network, margin: float, margin_gen: float | None = None) -> Network:

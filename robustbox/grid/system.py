@@ -6,11 +6,18 @@ buses, Q at PQ buses and |V|² at PV buses (held at their operating values);
 the slack bus keeps its voltage and absorbs the balance.  Policy
 "distributed": in addition a scalar α shares the balance among generators
 in proportion to participation factors (default: their P range), P is an
-equation at every bus, and only the slack bus angle is fixed.
+equation at every bus, and only the slack bus angle is fixed.  The complete
+rule — which bus holds its voltage, which unit takes which share — is a
+:class:`Roles` (see :func:`recourse_roles`); it is written into the box file.
 
-Monitored limits: |V|² at PQ buses, generator P (slack, or every
-participating generator) and Q (every generator bus), branch P and Q at both
-ends of rated branches, angle differences.  Branch apparent power is limited
+Monitored limits: |V|² at PQ buses, every sharing unit's own P range (under
+"distributed" the rows P_g = P̄_g + share_g α, linear; under "slack" the
+slack-bus total with bounds that keep each of its units in range), Q at every
+voltage-holding bus (the bus total: units share it in proportion to their
+Q ranges, so the total is in range exactly when each unit is), branch P and
+Q at both ends of rated branches, angle differences.  Held quantities (|V| at
+voltage-holding buses, P of units without a share, Q of fixed-Q units) are
+constant over the box; :func:`held_point` checks them at the operating point.  Branch apparent power is limited
 by derived rows: the faces cos φ_k P + sin φ_k Q ≤ rate·cos(π/N) of an
 inscribed regular N-gon (inside the polygon implies inside the circle, so the
 representation is inner; N = ``flow_faces``, default 32: 0.5 % of the rating
@@ -26,10 +33,11 @@ from typing import Literal, Sequence
 import numpy as np
 import scipy.sparse as sp
 
-from ..errors import NetworkError
+from ..errors import NetworkError, OperatingPointError
 from ..quadratic import QuadraticMap, QuadraticSystem, UncertainSet
 from .forms import angle_forms, branch_flow_forms, injection_forms, voltage_forms
-from .network import BUS_NUMBER, BUS_P_LOAD, BUS_Q_LOAD, BRANCH_LIMIT_A, BUS_V_HIGH, BUS_V_LOW, Network
+from .network import (BUS_NUMBER, BUS_P_LOAD, BUS_Q_LOAD, BRANCH_LIMIT_A, BUS_V_HIGH, BUS_V_LOW, FIXED_RANGE_MW, GEN_AT,
+                      Network)
 
 Policy = Literal["slack", "distributed"]
 
@@ -64,9 +72,183 @@ class Injection:
         return f"{self.quantity}[{self.bus}]"
 
 
+SNAP_PU = 1e-7  # a held quantity this far (× max(1, |limit|)) outside its limit is on it: solver tolerance
+# (Ipopt's default bound_relax_factor is 1e-8 relative, Ipopt 3.14 options reference, from memory)
+
+
+@dataclass(frozen=True, eq=False)
+class Roles:
+    """The complete recourse rule: what every bus and every in-service unit does when injections move.
+
+    ``slack``: bus index of the angle reference (under "slack" it also absorbs the balance).
+    ``pv``: the other bus indices that hold |V|: they carry a unit with a reactive range.
+    ``pq``: every other bus; a PQ bus may carry units with Qmin = Qmax, which hold that Q.
+    ``share``: per in-service unit (``net.gen_on`` order), its share of the change ΔB of total
+    generation (sums to 1): P_g = P̄_g + share_g ΔB.  Under "distributed" these are the
+    participation factors; under "slack" the slack-bus units with a P range share in proportion
+    to it.  Units with a fixed P (range ≤ FIXED_RANGE_MW) never share.
+    ``fixed_q``: per unit, Q range ≤ FIXED_RANGE_MW: it holds Q = Qmin.
+    At a voltage-holding bus the units with a Q range share the bus's remaining Q in proportion to
+    their ranges (:func:`split_q`), so each is in range exactly when the bus total is.
+    """
+
+    policy: Policy
+    slack: int
+    pv: np.ndarray
+    pq: np.ndarray
+    share: np.ndarray
+    fixed_p: np.ndarray
+    fixed_q: np.ndarray
+
+    @property
+    def voltage_buses(self) -> np.ndarray:
+        """Bus indices that hold |V| (slack first)."""
+        return np.concatenate([[self.slack], self.pv]).astype(np.int64)
+
+
+def recourse_record(net: Network, roles: Roles, op: OperatingPoint) -> dict:
+    """The complete policy in engineering units, as the box file states it (docs/file-format.md)."""
+    number = net.bus[:, BUS_NUMBER]
+    gb = net.gen_bus_idx()
+    units = []
+    for k, row in enumerate(net.gen_on):
+        p_rule = ("fixed P (Pmin = Pmax)" if roles.fixed_p[k] else
+                  "shares the balance" if roles.share[k] > 0 else "holds its P")
+        q_rule = "fixed Q (Qmin = Qmax)" if roles.fixed_q[k] else "shares its bus's Q in proportion to its Q range"
+        units.append({"index": int(row), "bus": int(number[gb[k]]), "balance_share": float(roles.share[k]),
+                      "p_rule": p_rule, "q_rule": q_rule})
+    pq_with_units = sorted(set(gb[roles.fixed_q].tolist()) & set(roles.pq.tolist()))
+    return {
+        "policy": roles.policy,
+        "angle_reference_bus": int(number[roles.slack]),
+        "voltage_buses": [{"bus": int(number[b]), "vm_pu": float(op.vm_pu[b]),
+                           "why": "slack bus" if b == roles.slack else "a unit with a reactive range holds it"}
+                          for b in roles.voltage_buses],
+        "pq_buses_with_units": [{"bus": int(number[b]), "why": "every unit here has Qmin = Qmax: the bus holds "
+                                 "its Q, not its voltage"} for b in pq_with_units],
+        "units": units,
+        "rule": ("unit P = P at the point + balance_share × (change of total generation); under 'slack' only the "
+                 "slack bus's units share, under 'distributed' all sharing units; at a voltage bus the units "
+                 "without a fixed Q share the bus's Q beyond their Qmin in proportion to Qmax − Qmin"),
+    }
+
+
+def _proportional(weight: np.ndarray) -> np.ndarray:
+    """Weights scaled to sum 1; infinite weights (unbounded units) share equally among themselves."""
+    w = np.where(np.isinf(weight), 1.0, 0.0) if np.any(np.isinf(weight)) else weight
+    return w / w.sum()
+
+
+def recourse_roles(net: Network, policy: Policy = "slack", participation: np.ndarray | None = None) -> Roles:
+    """The :class:`Roles` of every bus and unit of ``net`` under ``policy`` (see the class)."""
+    if policy not in ("slack", "distributed"):
+        raise NetworkError(f"unknown recourse policy '{policy}' (slack or distributed)")
+    lim = net.gen_limits_pu()
+    p_range = lim["pmax"] - lim["pmin"]
+    fixed_p = p_range * net.base_mva <= FIXED_RANGE_MW
+    fixed_q = (lim["qmax"] - lim["qmin"]) * net.base_mva <= FIXED_RANGE_MW
+    gb = net.gen_bus_idx()
+    s, pv, pq = net.bus_kinds()
+    rows = net.gen_on
+    if policy == "distributed":
+        if participation is None:
+            weight = np.where(fixed_p, 0.0, p_range)
+        else:
+            weight = np.asarray(participation, dtype=float).reshape(-1)
+            if weight.shape != (len(rows),) or not np.all(weight >= 0) or np.any(np.isnan(weight)):
+                raise NetworkError("participation factors: one nonnegative number per in-service generator")
+            bad = np.flatnonzero((weight > 0) & fixed_p)
+            if bad.size:
+                raise NetworkError(f"participation factors: generator row {int(rows[bad[0]]) + 1} has a fixed P "
+                                   "(Pmin = Pmax) and cannot take a share of the balance")
+        if not weight.sum() > 0:
+            raise NetworkError(f"{net.source}: no in-service generator has a P range to share the balance")
+    else:
+        weight = np.where((gb == s) & ~fixed_p, p_range, 0.0)
+        if not weight.sum() > 0:
+            raise NetworkError(f"{net.source}: no unit at the slack bus {int(net.bus[s, BUS_NUMBER])} has a P range, "
+                               "so it cannot absorb the balance; use the distributed policy or another slack bus")
+    return Roles(policy, s, pv, pq, _proportional(weight), fixed_p, fixed_q)
+
+
+def split_q(net: Network, roles: Roles, q_bus: np.ndarray) -> np.ndarray:
+    """Per-unit Q (pu) from bus totals ``q_bus`` (pu, per bus index) by the rule of :class:`Roles`.
+
+    Fixed-Q units hold Qmin; the others take Qmin plus a share of the rest in proportion to their
+    Q ranges (equal shares when a range is unbounded).
+    """
+    lim = net.gen_limits_pu()
+    gb = net.gen_bus_idx()
+    qg = np.where(roles.fixed_q, lim["qmin"], 0.0)
+    for b in np.unique(gb):
+        free = np.flatnonzero((gb == b) & ~roles.fixed_q)
+        if not free.size:
+            continue
+        rest = q_bus[b] - qg[gb == b].sum()
+        qmin, width = lim["qmin"][free], lim["qmax"][free] - lim["qmin"][free]
+        if np.all(np.isfinite(width)):
+            qg[free] = qmin + (rest - qmin.sum()) * _proportional(width)
+        else:
+            qg[free] = rest / free.size
+    return qg
+
+
+def _unit(net: Network, k: int) -> str:
+    row = int(net.gen_on[k])
+    return f"generator row {net.file_row('gen', row)} at bus {int(net.gen[row, GEN_AT])}"
+
+
+def held_point(net: Network, roles: Roles, op: OperatingPoint) -> OperatingPoint:
+    """``op`` with its held quantities checked against their limits and put on the policy's rule.
+
+    Checked: |V| at voltage-holding buses, every unit's P, the Q of fixed-Q units.  A value at most
+    SNAP_PU × max(1, |limit|) outside its limit is read as on the limit (solver tolerance) and
+    moved there, so is the P of a fixed-P unit; any larger violation raises OperatingPointError.
+    Per-unit Q is re-split from the bus totals by :func:`split_q`.  The point then solves the
+    equations only up to those tiny moves; the certificate carries that residual exactly.
+    """
+    def checked(values: np.ndarray, low: np.ndarray, high: np.ndarray, what) -> np.ndarray:
+        tol_lo = SNAP_PU * np.maximum(1.0, np.abs(np.where(np.isfinite(low), low, 0.0)))
+        tol_hi = SNAP_PU * np.maximum(1.0, np.abs(np.where(np.isfinite(high), high, 0.0)))
+        bad = np.flatnonzero((values < low - tol_lo) | (values > high + tol_hi) | ~np.isfinite(values))
+        if bad.size:
+            raise OperatingPointError(what(int(bad[0])))
+        return np.clip(values, low, high)
+
+    base = net.base_mva
+    vb = roles.voltage_buses
+    vmin, vmax = net.bus[vb, BUS_V_LOW], net.bus[vb, BUS_V_HIGH]
+    vm = op.vm_pu.copy()
+    vm[vb] = checked(op.vm_pu[vb], vmin, vmax, lambda i: (
+        f"the operating point violates a voltage limit: bus {int(net.bus[vb[i], BUS_NUMBER])} holds "
+        f"|V| = {op.vm_pu[vb[i]]:.6g} pu, outside [{vmin[i]:.6g}, {vmax[i]:.6g}] pu"))
+    lim = net.gen_limits_pu()
+    pg = checked(op.pg_pu, lim["pmin"], lim["pmax"], lambda k: (
+        f"the operating point violates a generator limit: {_unit(net, k)} produces "
+        f"{op.pg_pu[k] * base:.6g} MW, outside [{lim['pmin'][k] * base:.6g}, {lim['pmax'][k] * base:.6g}] MW"))
+    q_bus = np.zeros(net.n_bus)
+    np.add.at(q_bus, net.gen_bus_idx(), op.qg_pu)
+    fq = np.flatnonzero(roles.fixed_q)
+    gb = net.gen_bus_idx()
+    for b in np.unique(gb[fq]):
+        if b in set(vb.tolist()):
+            continue  # a fixed-Q unit next to a voltage-holding one: the bus total is monitored
+        held = lim["qmin"][gb == b].sum()
+        if abs(q_bus[b] - held) > SNAP_PU * max(1.0, abs(held)):
+            raise OperatingPointError(
+                f"the operating point violates a generator limit: the units at bus {int(net.bus[b, BUS_NUMBER])} "
+                f"have a fixed Q (Qmin = Qmax) of {held * base:.6g} Mvar in total, the point gives "
+                f"{q_bus[b] * base:.6g} Mvar")
+        q_bus[b] = held
+    return OperatingPoint(vm, op.va_rad, pg, split_q(net, roles, q_bus), op.objective_per_h)
+
+
 @dataclass(frozen=True, eq=False)
 class NetworkSystem:
-    """The certification system of a network, with its variable layout."""
+    """The certification system of a network, with its variable layout.
+
+    ``operating_point`` is the point after :func:`held_point` (held quantities on their rule).
+    """
 
     system: QuadraticSystem
     point: np.ndarray
@@ -79,13 +261,15 @@ class NetworkSystem:
     pv: np.ndarray
     pq: np.ndarray
     flow_faces: int
+    roles: Roles
 
     def describe_policy(self) -> str:
         if self.policy == "slack":
-            return (f"slack bus {int(self.network.bus[self.slack, BUS_NUMBER])} absorbs the balance; "
-                    "PV-bus voltage magnitudes and generator P set-points are held")
-        return ("distributed slack: generators share the balance by participation factors; "
-                "PV-bus voltage magnitudes are held")
+            return (f"slack bus {int(self.network.bus[self.slack, BUS_NUMBER])} absorbs the balance (its units in "
+                    "proportion to their P ranges); voltage magnitudes at generator buses and the other units' P "
+                    "are held")
+        return ("distributed slack: units share the balance by participation factors; voltage magnitudes at "
+                "generator buses are held")
 
 
 def _per_bus_sum(net: Network, values: np.ndarray) -> np.ndarray:
@@ -98,12 +282,14 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
                  participation: np.ndarray | None = None, flow_faces: int = 32) -> NetworkSystem:
     """Build the :class:`NetworkSystem` for ``injections`` around the operating point ``op``."""
     n = net.n_bus
-    s, pv, pq = net.bus_kinds()
+    roles = recourse_roles(net, policy, participation)
+    s, pv, pq = roles.slack, roles.pv, roles.pq
     index = net.bus_index
     gen_on = net.gen_on
     if len(op.vm_pu) != n or len(op.pg_pu) != len(gen_on):
         raise NetworkError(f"operating point has {len(op.vm_pu)} bus voltages and {len(op.pg_pu)} generator outputs; "
                            f"the network has {n} buses and {len(gen_on)} generators in service")
+    op = held_point(net, roles, op)
     volt = op.voltage * np.exp(-1j * op.va_rad[s])  # slack angle 0
     x_full = np.concatenate([volt.real, volt.imag])
     free = np.ones(2 * n, dtype=bool)
@@ -112,16 +298,8 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     new_index = -np.ones(2 * n, dtype=np.int64)
     new_index[free] = np.arange(n_state)
     dist = policy == "distributed"
-    if policy not in ("slack", "distributed"):
-        raise NetworkError(f"unknown recourse policy '{policy}' (slack or distributed)")
     lim = net.gen_limits_pu()
-    if dist:
-        part = (lim["pmax"] - lim["pmin"]) if participation is None else np.asarray(participation, dtype=float)
-        if part.shape != (len(gen_on),) or np.any(part < 0) or part.sum() <= 0:
-            raise NetworkError("participation factors: one nonnegative number per in-service generator, not all zero")
-        part = part / part.sum()
-    else:
-        part = np.zeros(len(gen_on))
+    part = roles.share if dist else np.zeros(len(gen_on))
     bus_part = _per_bus_sum(net, part)
     inj = injection_forms(net)
     load = net.load_pu()
@@ -140,13 +318,23 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     target = np.concatenate([pg_bus[p_buses] - load.real[p_buses], qg_bus[pq] - load.imag[pq], op.vm_pu[pv] ** 2])
     # ------------------------------------------------------------ limits
     gen_bus = np.union1d(pv, [s])  # buses whose generators' Q follows the voltage set-point
-    pmin_b, pmax_b = _per_bus_sum(net, lim["pmin"]), _per_bus_sum(net, lim["pmax"])
     qmin_b, qmax_b = _per_bus_sum(net, lim["qmin"]), _per_bus_sum(net, lim["qmax"])
-    all_gen_bus = np.unique(net.gen_bus_idx())
-    p_lim_bus = all_gen_bus[bus_part[all_gen_bus] > 0] if dist else np.array([s])
-    maps = [vol.take(pq), inj.take(p_lim_bus), inj.take(n + gen_bus)]
-    lower = [net.bus[pq, BUS_V_LOW] ** 2, pmin_b[p_lim_bus] - load.real[p_lim_bus], qmin_b[gen_bus] - load.imag[gen_bus]]
-    upper = [net.bus[pq, BUS_V_HIGH] ** 2, pmax_b[p_lim_bus] - load.real[p_lim_bus], qmax_b[gen_bus] - load.imag[gen_bus]]
+    sharing = np.flatnonzero(roles.share > 0)
+    if dist:  # every sharing unit's own range: P_g = P̄_g + share_g α, a row linear in α
+        p_rows = QuadraticMap.from_terms(2 * n, [f"Pgen[{_unit(net, int(k))}]" for k in sharing],
+                                         ([], [], [], []), ([], [], []), op.pg_pu[sharing])
+        p_lo, p_up = lim["pmin"][sharing], lim["pmax"][sharing]
+        p_lim_bus = np.zeros(0, dtype=np.int64)
+    else:  # the slack-bus total T, with the bounds that keep each of its sharing units in range
+        p_lim_bus = np.array([s])
+        p_rows = inj.take(p_lim_bus)
+        # unit g: P̄_g + share_g (T + load − P̄_bus) ∈ [Pmin_g, Pmax_g]
+        offset = pg_bus[s] - load.real[s]
+        p_lo = np.array([offset + np.max((lim["pmin"][sharing] - op.pg_pu[sharing]) / roles.share[sharing])])
+        p_up = np.array([offset + np.min((lim["pmax"][sharing] - op.pg_pu[sharing]) / roles.share[sharing])])
+    maps = [vol.take(pq), p_rows, inj.take(n + gen_bus)]
+    lower = [net.bus[pq, BUS_V_LOW] ** 2, p_lo, qmin_b[gen_bus] - load.imag[gen_bus]]
+    upper = [net.bus[pq, BUS_V_HIGH] ** 2, p_up, qmax_b[gen_bus] - load.imag[gen_bus]]
     flows = branch_flow_forms(net)
     rated = np.flatnonzero(net.branch[net.branch_on, BRANCH_LIMIT_A] > 0)
     flow_rows = (4 * rated[:, None] + np.arange(4)[None, :]).reshape(-1)
@@ -158,12 +346,13 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     first_flow = sum(len(x) for x in lower[:3])
     derived, derived_up, derived_names = _flow_polygon(net, rated, first_flow, lim_full.n_rows, flow_faces)
     names = list(lim_full.names)
-    n_v, n_p = len(pq), len(p_lim_bus)
-    for k, b in enumerate(p_lim_bus):
-        names[n_v + k] = f"Pgen[{int(net.bus[b, BUS_NUMBER])}]"
+    n_v, n_p = len(pq), p_rows.n_rows
+    if not dist:
+        names[n_v] = f"Pgen[{int(net.bus[s, BUS_NUMBER])}]"
     for k, b in enumerate(gen_bus):
         names[n_v + n_p + k] = f"Qgen[{int(net.bus[b, BUS_NUMBER])}]"
-    lim_map = lim_full.substitute(new_index, x_full, n_vars)
+    alpha_terms = (n_v + np.arange(len(sharing)), np.full(len(sharing), n_state), roles.share[sharing]) if dist else None
+    lim_map = lim_full.substitute(new_index, x_full, n_vars, alpha_terms)
     lim_map = QuadraticMap(lim_map.n_vars, lim_map.n_rows, lim_map.q_row, lim_map.q_a, lim_map.q_b, lim_map.q_val,
                            lim_map.linear, lim_map.constant, tuple(names))
     # ------------------------------------------------------- uncertainty
@@ -211,7 +400,7 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
                         shape=(n_vars, n_vars))
     system = QuadraticSystem(eq_map, target, lim_map, np.concatenate(lower), np.concatenate(upper), unc, tuple(var_names),
                              derived, derived_up, derived_names, rot)
-    return NetworkSystem(system, point, net, op, tuple(injections), policy, part, s, pv, pq, flow_faces)
+    return NetworkSystem(system, point, net, op, tuple(injections), policy, part, s, pv, pq, flow_faces, roles)
 
 
 def _flow_polygon(net: Network, rated: np.ndarray, first: int, n_rows: int, faces: int
