@@ -755,6 +755,8 @@ def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "
     """
     t0 = time.perf_counter()
     lower_kept = 1.0
+    if not (options.max_fraction > 0 and np.isfinite(options.max_fraction)):
+        raise CertificateError(f"max_fraction must be a positive number, got {options.max_fraction}")
     point = system.equations._check_point(point)
     eq = system.equations
     residual = eq.evaluate(point) - system.target
@@ -834,6 +836,9 @@ def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "
                                f"{check.worst_margin:.3g}); no certificate is returned")
     status = "certified" if check.holds else "rejected"
     frac = _fraction_in(lower, upper, wl, wu)
+    if objective != "verify" and len(lower) and np.all(upper - lower <= 0):
+        raise CertificateError(f"only a zero-width box can be certified around this point ({check.binding} leaves "
+                               "no room); choose an operating point with room, e.g. a larger OPF margin")
     if status == "rejected":
         message = f"rejected: {check.binding} fails (margin {check.worst_margin:.3g})"
     elif objective == "uniform":

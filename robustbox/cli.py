@@ -8,6 +8,9 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
+import os
+import re
 import sys
 import time
 import warnings
@@ -36,9 +39,12 @@ def _uncertain(text: str):
     if text in ("loads", "renewables"):
         return text
     try:
-        return [int(b) for b in text.split(",") if b.strip()]
+        buses = [int(b) for b in text.split(",") if b.strip()]
     except ValueError:
-        raise argparse.ArgumentTypeError(f"--uncertain: 'loads', 'renewables' or bus numbers like 5,9,17 (got '{text}')") from None
+        buses = []
+    if not buses:
+        raise argparse.ArgumentTypeError(f"--uncertain: 'loads', 'renewables' or bus numbers like 5,9,17 (got '{text}')")
+    return buses
 
 
 def _print_summary(data: dict) -> None:
@@ -47,20 +53,58 @@ def _print_summary(data: dict) -> None:
     if "opf" in data:
         o = data["opf"]
         inc = o.get("cost_increase_per_h")
-        print(f"operating point: AC-OPF margin {o['margin']:g}, cost {o['objective_per_h']:.2f} $/h"
+        print(f"operating point: AC-OPF margin {o['margin_fraction']:g}, cost {o['cost_per_h']:.2f} $/h"
               + (f" (+{inc:.2f} $/h over the untightened optimum)" if inc is not None else ""))
     print(f"status: {data['status']}   certified fraction of the band: {data['certified_fraction']:.4g}")
     print(f"binding: {data['binding_limit']}")
-    print(f"{'bus':>6} {'qty':>3} {'nominal':>10} {'lower':>10} {'upper':>10}  unit")
-    for e in data["box"]:
-        print(f"{e['bus']:>6} {e['quantity']:>3} {e['nominal']:>10.3f} {e['lower']:>10.3f} {e['upper']:>10.3f}  {e['unit']}")
+    rows = sorted(data["box"], key=_certified_share)
+    print(f"{'bus':>6} {'qty':>3} {'nominal':>11} {'lower':>11} {'upper':>11}  unit  certified share of the band")
+    for e in rows[:SUMMARY_ROWS]:
+        print(f"{e['bus']:>6} {e['quantity']:>3} {e['nominal']:>11.5g} {e['lower']:>11.5g} {e['upper']:>11.5g}  "
+              f"{e['unit']:<4}  {_certified_share(e):.4g}")
+    if len(rows) > SUMMARY_ROWS:
+        print(f"... {len(rows) - SUMMARY_ROWS} more injections (tightest first above; all of them in --out / --csv)")
     print(f"time: {data['timings_s']['total_s']:.2f} s (certificate)")
 
 
+SUMMARY_ROWS = 20  # box rows printed on the console (common practice, no source)
+
+
+def _certified_share(e: dict) -> float:
+    """Certified width over requested width of one box entry (1 when nothing was requested)."""
+    asked = e["requested_upper"] - e["requested_lower"]
+    return (e["upper"] - e["lower"]) / asked if asked > 0 else 1.0
+
+
+def _fresh_output(path: str | None, what: str, folder: bool = False) -> None:
+    """Refuse, before any computation, an output that exists (a file; a folder may exist) or whose folder does not."""
+    if not path:
+        return
+    p = Path(path)
+    if not folder and p.exists():
+        raise NetworkError(f"{what} {path} exists; remove it or choose another name")
+    if folder and p.exists() and not p.is_dir():
+        raise NetworkError(f"{what} {path} exists and is not a folder")
+    parent = p.parent if not folder else p.parent
+    if not parent.exists():
+        raise NetworkError(f"{what} {path}: the folder {parent} does not exist")
+
+
 def _cmd_certify(args: argparse.Namespace) -> int:
-    from .study import certify_case, result_to_json, save_json
-    if not args.band > 0:
-        raise NetworkError(f"--band must be positive, got {args.band}")
+    from .study import certify_case, result_to_json, save_json, write_box_csv
+    if not (args.band > 0 and math.isfinite(args.band)):
+        raise NetworkError(f"--band must be a positive number, got {args.band}")
+    if args.uncertain == "loads" and args.band >= 1.0:
+        raise NetworkError(f"--band {args.band:g} with --uncertain loads lets loads reach zero or change sign; "
+                           "use a band below 1 (a fraction of each load)")
+    if not (args.max_fraction > 0 and math.isfinite(args.max_fraction)):
+        raise NetworkError(f"--max-fraction must be a positive number, got {args.max_fraction}")
+    if args.margin is not None and not (0 <= args.margin < 0.5):
+        raise NetworkError(f"--margin must be in [0, 0.5), got {args.margin}")
+    _fresh_output(args.out, "--out")
+    _fresh_output(args.csv, "--csv")
+    _fresh_output(args.report, "--report", folder=True)
+    pair = _slice_pair(args.slice)
     point = None
     if args.point:
         try:
@@ -71,19 +115,31 @@ def _cmd_certify(args: argparse.Namespace) -> int:
         from .contingency import certify_secure_cli
         data, res = certify_secure_cli(args, point, _fan_out(args))
     else:
-        res = certify_case(args.case, args.uncertain, args.band, args.objective,
-                           0.1 if args.margin is None else args.margin, point, args.policy or "slack",
-                           CertifyOptions(max_fraction=args.max_fraction), point_source=args.point or "point file")
+        res = certify_case(args.case, args.uncertain, args.band, args.objective, args.margin, point,
+                           args.policy or "slack", CertifyOptions(max_fraction=args.max_fraction),
+                           point_source=args.point or "point file", say=_say(args))
         data = result_to_json(res)
         _print_summary(data)
     if args.out:
         save_json(data, args.out)
         print(f"wrote {args.out}")
+    if args.csv:
+        write_box_csv(data, args.csv)
+        print(f"wrote {args.csv}")
     if args.report:
         from .report import write_report
-        pair = tuple(x.strip() for x in args.slice.split(",")) if args.slice else None
         print(f"wrote {write_report(res, args.report, pair=pair)}")
     return EXIT_OK
+
+
+def _slice_pair(text: str | None) -> tuple[str, str] | None:
+    """The --slice pair, checked for form before any computation (names are checked against the box later)."""
+    if not text:
+        return None
+    pair = tuple(x.strip() for x in text.split(","))
+    if len(pair) != 2 or not all(re.fullmatch(r"[pq]\[\d+\]", x) for x in pair) or pair[0] == pair[1]:
+        raise NetworkError(f"--slice needs two different injections like p[9],q[17]; got '{text}'")
+    return pair  # type: ignore[return-value]
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
@@ -93,7 +149,8 @@ def _cmd_check(args: argparse.Namespace) -> int:
         data = json.loads(Path(args.box).read_text())
     except (OSError, json.JSONDecodeError) as exc:
         raise OperatingPointError(f"{args.box}: cannot read the box file ({exc})") from None
-    rep = check_box(net, data, args.samples, source=args.box, progress=_progress(sys.stderr.isatty() and not args.quiet))
+    quiet = getattr(args, "quiet", False)
+    rep = check_box(net, data, args.samples, source=args.box, progress=_progress(sys.stderr.isatty() and not quiet))
     print(f"checked {rep.points} points ({rep.vertices} vertices): {rep.violations} with violations, "
           f"{rep.not_converged} power flows not converged")
     for key, val in sorted(rep.worst_margin.items()):
@@ -104,14 +161,17 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 
 def _cmd_opf(args: argparse.Namespace) -> int:
-    from .grid.model import solve_opf
+    from .grid.model import find_operating_point
     from .study import point_to_json, save_json
+    _fresh_output(args.out, "--out")
+    if args.margin is not None and not (0 <= args.margin < 0.5):
+        raise NetworkError(f"--margin must be in [0, 0.5), got {args.margin}")
     net = read_case(args.case)
-    res = solve_opf(net, args.margin)
+    res = find_operating_point(net, args.margin, _say(args))
     data = point_to_json(net, res.point)
-    data.update({"margin": args.margin, "base_objective": res.base_objective_per_h,
-                 "cost_increase": res.cost_increase_per_h, "time_s": res.time_s})
-    print(f"AC-OPF {'with margin ' + format(args.margin, 'g') if args.margin else '(no margin)'}: "
+    data.update({"margin_fraction": res.margin, "untightened_cost_per_h": res.base_objective_per_h,
+                 "cost_increase_per_h": res.cost_increase_per_h, "time_s": res.time_s})
+    print(f"AC-OPF {'with margin ' + format(res.margin, 'g') if res.margin else '(no margin)'}: "
           f"{res.objective_per_h:.4f} $/h, {res.status}, {res.time_s:.2f} s")
     if res.cost_increase_per_h is not None:
         print(f"cost increase over the untightened optimum: {res.cost_increase_per_h:.4f} $/h "
@@ -122,9 +182,17 @@ def _cmd_opf(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _say(args: argparse.Namespace):
+    """One line per step to stderr on a terminal, unless --quiet."""
+    if getattr(args, "quiet", False) or not sys.stderr.isatty():
+        return None
+    return lambda line: print(f"robustbox: {line}", file=sys.stderr, flush=True)
+
+
 def _cmd_demo(args: argparse.Namespace) -> int:
     from .report import write_report
     from .study import certify_case, check_box, result_to_json, save_json
+    _fresh_output(args.out, "--out", folder=True)
     out = Path(args.out) if args.out else Path.cwd() / time.strftime("robustbox-demo-%Y%m%d-%H%M%S")
     out.mkdir(parents=True, exist_ok=True)
     case = demo_case_path()
@@ -198,25 +266,42 @@ def _cmd_profile_demo(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+MARGIN_HELP = ("limit margin of the operating-point AC-OPF: every limit tightened by this fraction of its range "
+               "(flows: of the rating). Default: the largest of 0.1, 0.05, 0.02, 0.01, 0.005 that solves; 0: the "
+               "untightened optimum (no room: a zero box)")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="robustbox", description="Certified inner boxes of injections for AC power flow.")
-    p.add_argument("--debug", action="store_true", help="show tracebacks")
-    sub = p.add_subparsers(dest="command", required=True)
+    from . import __version__
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                        help="show Python tracebacks instead of one-line errors")
+    common.add_argument("--quiet", action="store_true", default=argparse.SUPPRESS,
+                        help="no progress lines on the terminal (results are still printed)")
+    p = argparse.ArgumentParser(prog="robustbox", parents=[common],
+                                description="Certified inner boxes of injections for AC power flow.")
+    p.add_argument("--version", action="version", version=f"robustbox {__version__}")
+    sub = p.add_subparsers(dest="command", required=True, parser_class=lambda **kw: argparse.ArgumentParser(
+        parents=[common], **kw))
     c = sub.add_parser("certify", help="certify a box of injections on a case file")
-    c.add_argument("case")
+    c.add_argument("case", help="case file (MATPOWER format, e.g. a PGLib-OPF .m file)")
     c.add_argument("--uncertain", type=_uncertain, default="loads",
                    help="loads | renewables | comma-separated bus numbers (sites injecting 0..band×100 MW)")
-    c.add_argument("--band", type=float, default=0.05, help="requested band (fraction; default 0.05)")
+    c.add_argument("--band", type=float, default=0.05,
+                   help="requested band (default 0.05): with loads, each load's P and Q within ±band × nominal "
+                        "(below 1); with renewables, each marked site from nominal up to band × its capacity "
+                        "(unmarked cases: five sites up to band × 100 MW); with bus numbers, each site up to "
+                        "band × 100 MW")
     c.add_argument("--objective", choices=["uniform", "hosting", "widths", "volume"], default="uniform",
                    help="uniform fraction of the band | hosting (upper ends, lower fixed) | widths | volume")
-    c.add_argument("--margin", type=float, default=None,
-                   help="limit margin of the operating-point OPF (default 0.1; with --contingencies 0.1, 0.05, 0.02, "
-                        "0.01 are tried in turn)")
+    c.add_argument("--margin", type=float, default=None, help=MARGIN_HELP)
     c.add_argument("--point", help="operating point JSON (from 'robustbox opf') instead of the margin OPF")
     c.add_argument("--policy", choices=["slack", "distributed"], default=None,
                    help="recourse policy (default slack; with --contingencies distributed)")
-    c.add_argument("--max-fraction", type=float, default=1.0, help="look beyond the band up to this fraction")
-    c.add_argument("--out", help="write the result JSON here")
+    c.add_argument("--max-fraction", type=float, default=1.0,
+                   help="look beyond the band up to this multiple of it (default 1: stop at the band)")
+    c.add_argument("--out", help="write the result JSON (the box file) here; must not exist")
+    c.add_argument("--csv", help="write the box as CSV here (one row per injection, MW/Mvar); must not exist")
     c.add_argument("--report", help="write figures and report.html into this folder")
     c.add_argument("--slice", help="two injections for the report's 2-D slice, e.g. p[9],p[17] (default: first two)")
     c.add_argument("--contingencies", help="n-1 (every in-service branch and generator) or a contingency file "
@@ -228,15 +313,15 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--serial", action="store_true", help="certify the outages in this process, without Dask")
     c.set_defaults(func=_cmd_certify)
     k = sub.add_parser("check", help="independently validate a saved box by sampling power flows")
-    k.add_argument("case")
-    k.add_argument("box")
-    k.add_argument("--samples", type=int, default=300)
-    k.add_argument("--quiet", action="store_true")
+    k.add_argument("case", help="case file the box was certified on")
+    k.add_argument("box", help="box file written by 'robustbox certify --out'")
+    k.add_argument("--samples", type=int, default=300,
+                   help="random interior points (and random vertices beyond 10 injections); default 300, ≥ 1")
     k.set_defaults(func=_cmd_check)
     o = sub.add_parser("opf", help="solve the AC-OPF (operating point)")
-    o.add_argument("case")
-    o.add_argument("--margin", type=float, default=0.0)
-    o.add_argument("--out")
+    o.add_argument("case", help="case file (MATPOWER format)")
+    o.add_argument("--margin", type=float, default=None, help=MARGIN_HELP)
+    o.add_argument("--out", help="write the operating point JSON here (for certify --point); must not exist")
     o.set_defaults(func=_cmd_opf)
     d = sub.add_parser("demo", help="the whole job on the built-in fictional demo grid")
     d.add_argument("--out", help="report folder (default: a new folder here)")
@@ -289,13 +374,16 @@ def main(argv: list[str] | None = None) -> int:
 def _run(args: argparse.Namespace) -> int:
     try:
         return args.func(args)
+    except BrokenPipeError:  # e.g. `robustbox certify ... | head`: the reader left, nothing to report
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())  # no second error at interpreter exit
+        return EXIT_OK
     except (CaseFileError, NetworkError, OperatingPointError, QuadraticSystemError, ModelStructureError) as exc:
-        if args.debug:
+        if getattr(args, "debug", False):
             raise
         print(f"robustbox: error: {exc}", file=sys.stderr)
         return EXIT_INPUT
     except (SolverError, CertificateError, RobustboxError) as exc:
-        if args.debug:
+        if getattr(args, "debug", False):
             raise
         print(f"robustbox: error: {exc}", file=sys.stderr)
         return EXIT_SOLVE
@@ -303,7 +391,7 @@ def _run(args: argparse.Namespace) -> int:
         print("robustbox: interrupted", file=sys.stderr)
         return EXIT_SOLVE
     except Exception as exc:  # noqa: BLE001 - a bug of ours: one line, the traceback behind --debug
-        if args.debug:
+        if getattr(args, "debug", False):
             raise
         print(f"robustbox: internal error ({type(exc).__name__}: {exc}); run again with --debug and report it",
               file=sys.stderr)

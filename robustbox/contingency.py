@@ -21,6 +21,7 @@ from .certify import CertifyOptions, certify
 from .errors import CertificateError, NetworkError, OperatingPointError, SolverError
 from .fanout import FanOut, run_all
 from .grid.casefile import read_case
+from .grid.model import MARGIN_LADDER
 from .grid.network import Network
 from .grid.security import (Outage, SCOPFResult, all_outages, default_participation, islanded_buses, outage_network,
                             post_outage_point, read_contingencies, solve_scopf)
@@ -28,7 +29,6 @@ from .grid.system import Injection, OperatingPoint, Policy, build_system
 from .study import CaseCertificate, point_from_json, result_to_json, scenario_injections
 from .validate import ValidationReport, validate_box
 
-MARGIN_LADDER = (0.1, 0.05, 0.02, 0.01)  # tried in turn when no --margin is given (common practice, no source)
 
 
 @dataclass(frozen=True)

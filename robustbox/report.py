@@ -127,7 +127,7 @@ def write_report(res: CaseCertificate, folder: str | Path, validation: Validatio
     opf_html = ""
     if opf:
         inc = opf["cost_increase_per_h"]
-        opf_html = (f"<p>Operating point: AC-OPF with margin {opf['margin']:g}, cost {opf['objective_per_h']:.2f} $/h"
+        opf_html = (f"<p>Operating point: AC-OPF with margin {opf['margin_fraction']:g}, cost {opf['cost_per_h']:.2f} $/h"
                     + (f" (+{inc:.2f} $/h over the untightened optimum)" if inc is not None else "") + ".</p>")
     page = _page(f"robustbox report — {res.network.name}", f"""<h1>Certified injection box — {html.escape(res.network.name)}</h1>
 <p class="caution"><b>Caution.</b> {html.escape(CAUTION)}</p>

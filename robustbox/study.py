@@ -6,7 +6,9 @@ engineering units (MW, Mvar, pu for voltages) and net injections at buses
 """
 from __future__ import annotations
 
+import csv
 import json
+import re
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Sequence
@@ -16,7 +18,7 @@ import numpy as np
 from .certify import Certificate, CertifyOptions, Objective, certify
 from .errors import NetworkError, OperatingPointError
 from .grid.casefile import read_case
-from .grid.model import OPFResult, solve_opf
+from .grid.model import OPFResult, find_operating_point
 from .grid.network import BUS_NUMBER, GEN_AT, GEN_P, GEN_Q_LOW, GEN_V_SET, Network
 from .grid.powerflow import newton_power_flow
 from .grid.system import (Injection, NetworkSystem, OperatingPoint, build_system, largest_load_pq_buses,
@@ -36,6 +38,7 @@ class CaseCertificate:
     opf: OPFResult | None
     band: float
     scenario: str
+    max_fraction: float = 1.0
 
 
 def scenario_injections(net: Network, uncertain: str | Sequence[int], band: float) -> tuple[list[Injection], str]:
@@ -60,7 +63,7 @@ def point_to_json(net: Network, op: OperatingPoint) -> dict:
     """The operating point in engineering units (generator rows 0-based as in the gen table)."""
     on = net.gen_on
     return {
-        "objective": op.objective_per_h,
+        "cost_per_h": op.objective_per_h,
         "generators": [{"bus": int(net.gen[g, GEN_AT]), "index": int(g), "p_mw": float(op.pg_pu[k] * net.base_mva),
                         "q_mvar": float(op.qg_pu[k] * net.base_mva), "vm_pu": float(op.vm_pu[net.bus_index[net.gen[g, GEN_AT]]])}
                        for k, g in enumerate(on)],
@@ -95,7 +98,7 @@ def point_from_json(net: Network, data: dict, source: str = "point file") -> Ope
         except (KeyError, TypeError, ValueError) as exc:
             raise OperatingPointError(f"{source}: bus entry {k} or a generator's q_mvar is missing or not a number "
                                       f"({exc!r}); each bus needs \"bus\", \"vm_pu\", \"va_deg\"") from None
-        return OperatingPoint(vm, va, pg, qg, data.get("objective"))
+        return OperatingPoint(vm, va, pg, qg, data.get("cost_per_h"))
     work = net.copy()
     for k, g in enumerate(on):
         work.gen[g, GEN_P] = pg[k] * net.base_mva
@@ -133,21 +136,23 @@ def power_flow_point(net: Network) -> OperatingPoint:
 
 
 def certify_case(case: str | Path | Network, uncertain: str | Sequence[int] = "loads", band: float = 0.05,
-                 objective: Objective = "uniform", margin: float = 0.1, point: dict | None = None,
+                 objective: Objective = "uniform", margin: float | None = None, point: dict | None = None,
                  policy: str = "slack", options: CertifyOptions = CertifyOptions(),
-                 point_source: str = "point file") -> CaseCertificate:
-    """Operating point (margin AC-OPF, or ``point``), then the certificate for the chosen uncertainty."""
+                 point_source: str = "point file", say=None) -> CaseCertificate:
+    """Operating point (``point``, else the margin AC-OPF: ``margin``, or by default the largest margin of
+    :data:`~robustbox.grid.model.MARGIN_LADDER` that solves; ``say`` gets one line per attempt), then the
+    certificate for the chosen uncertainty."""
     net = case if isinstance(case, Network) else read_case(case)
     injections, scenario = scenario_injections(net, uncertain, band)
     opf = None
     if point is None:
-        opf = solve_opf(net, margin)
+        opf = find_operating_point(net, margin, say)
         op = opf.point
     else:
         op = point_from_json(net, point, point_source)
     nsys = build_system(net, op, injections, policy)  # type: ignore[arg-type]
     cert = certify(nsys.system, nsys.point, objective, options=options)
-    return CaseCertificate(net, nsys, cert, opf, band, scenario)
+    return CaseCertificate(net, nsys, cert, opf, band, scenario, options.max_fraction)
 
 
 def result_to_json(res: CaseCertificate) -> dict:
@@ -172,15 +177,52 @@ def result_to_json(res: CaseCertificate) -> dict:
     out = {
         "format_version": FORMAT_VERSION, "case": str(net.source), "base_mva": base, "scenario": res.scenario,
         "objective": cert.objective, "status": cert.status, "certified_fraction": min(cert.certified_fraction, 1e12),
-        "box": box, "operating_point": pt, "recourse": recourse_record(net, nsys.roles, op), "binding_limit": cert.binding, "worst_margin": cert.worst_margin,
+        "box": box, "operating_point": pt, "recourse": recourse_record(net, nsys.roles, op), "binding_limit": plain_condition(cert.binding, cert.certified_fraction,
+                                                          res.max_fraction),
+        "binding_condition": cert.binding, "worst_margin_fraction": cert.worst_margin,
         "timings_s": cert.timings_s,
         "caution": CAUTION,
     }
     if res.opf is not None:
-        out["opf"] = {"objective_per_h": res.opf.objective_per_h, "margin": res.opf.margin,
-                      "base_objective_per_h": res.opf.base_objective_per_h,
+        out["opf"] = {"cost_per_h": res.opf.objective_per_h, "margin_fraction": res.opf.margin,
+                      "untightened_cost_per_h": res.opf.base_objective_per_h,
                       "cost_increase_per_h": res.opf.cost_increase_per_h, "time_s": res.opf.time_s}
     return out
+
+
+_QUANTITY = {"P": "active-power balance", "Q": "reactive-power balance", "V2": "voltage set-point"}
+_SIDE = {"Sf": "from", "St": "to"}
+
+
+def plain_condition(condition: str, fraction: float | None = None, max_fraction: float = 1.0) -> str:
+    """The certificate's binding condition in a power engineer's words (bus numbers, table rows, what limits).
+
+    ``condition`` is :attr:`Certificate.binding` ("upper limit 'Qgen[92]'", "self-mapping of equation
+    'Q[24]'", ...); with ``fraction`` ≥ ``max_fraction`` nothing limited the box.
+    """
+    if fraction is not None and fraction >= max_fraction * (1.0 - 1e-9):
+        return "no limit binds: the whole requested band is certified"
+    m = re.fullmatch(r"self-mapping of equation '(\w+)\[(\d+)\]'", condition)
+    if m:
+        return (f"solvability of the {_QUANTITY.get(m[1], m[1])} at bus {m[2]}: the box is limited by the power-flow "
+                "equations' nonlinearity, not by an operating limit")
+    m = re.fullmatch(r"(upper|lower) limit '(.+)'", condition)
+    if not m:
+        return condition
+    side, row = m[1], m[2]
+    for pattern, words in (
+            (r"V2\[(\d+)\]", lambda g: f"voltage {side} limit at bus {g[1]}"),
+            (r"Pgen\[(generator row \d+ at bus \d+)\]", lambda g: f"active-power {side} limit of {g[1]}"),
+            (r"Pgen\[(\d+)\]", lambda g: f"active-power {side} limit of the slack bus's units (bus {g[1]})"),
+            (r"Qgen\[(\d+)\]", lambda g: f"reactive-power {side} limit of the generators at bus {g[1]} (their total)"),
+            (r"(S[ft])\[(\d+)-(\d+)#(\d+)\]@\d+deg", lambda g: f"apparent-power rating of branch {g[2]}-{g[3]} "
+                                                           f"(row {g[4]} of the branch table) at its {_SIDE[g[1]]} end"),
+            (r"angle(max|min)\[(\d+)-(\d+)#(\d+)\]", lambda g: f"angle-difference {'upper' if g[1] == 'max' else 'lower'}"
+                                                       f" limit of branch {g[2]}-{g[3]} (row {g[4]} of the branch table)")):
+        g = re.fullmatch(pattern, row)
+        if g:
+            return words(g)
+    return condition
 
 
 CAUTION = ("Results depend on the model data (impedances, limits, the operating point and the uncertainty you "
@@ -232,3 +274,13 @@ def check_box(net: Network, data: dict, samples: int = 300, seed: int = 0, sourc
 
 def save_json(data: dict, path: str | Path) -> None:
     Path(path).write_text(json.dumps(data, indent=2, default=float), encoding="utf-8")
+
+
+def write_box_csv(data: dict, path: str | Path) -> None:
+    """The box of a result file as CSV: one row per uncertain injection, MW or Mvar."""
+    keys = ("bus", "quantity", "unit", "nominal", "lower", "upper", "requested_lower", "requested_upper")
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        out = csv.writer(fh)
+        out.writerow(keys)
+        for e in data["box"]:
+            out.writerow([e[k] for k in keys])

@@ -76,7 +76,7 @@ def branch_flow_forms(net: Network) -> QuadraticMap:
     names = []
     for r in net.branch_on:
         fb, tb = int(net.branch[r, 0]), int(net.branch[r, 1])
-        tag = f"{fb}-{tb}#{r + 1}"
+        tag = f"{fb}-{tb}#{net.file_row('branch', int(r))}"
         names += [f"Pf[{tag}]", f"Qf[{tag}]", f"Pt[{tag}]", f"Qt[{tag}]"]
     return QuadraticMap.from_terms(2 * n, names, quad, ([], [], []))
 
@@ -106,7 +106,7 @@ def current_forms(net: Network) -> QuadraticMap:
             b_q.append(idx[ib])
             v_q.append(coef)
     for r in net.branch_on:
-        tag = f"{int(net.branch[r, 0])}-{int(net.branch[r, 1])}#{int(r) + 1}"
+        tag = f"{int(net.branch[r, 0])}-{int(net.branch[r, 1])}#{net.file_row('branch', int(r))}"
         names += [f"I2f[{tag}]", f"I2t[{tag}]"]
     cat = (lambda xs: np.concatenate(xs) if xs else np.zeros(0))
     return QuadraticMap.from_terms(2 * n, names, (cat(rows_q), cat(a_q), cat(b_q), cat(v_q)), ([], [], []))
@@ -134,7 +134,7 @@ def angle_forms(net: Network) -> QuadraticMap:
             a_q.append(a)
             b_q.append(b)
             v_q.append(v)
-            names.append(f"angle{'max' if sign > 0 else 'min'}[{int(br[k, 0])}-{int(br[k, 1])}#{int(net.branch_on[k]) + 1}]")
+            names.append(f"angle{'max' if sign > 0 else 'min'}[{int(br[k, 0])}-{int(br[k, 1])}#{net.file_row('branch', int(net.branch_on[k]))}]")
             out += 1
     cat = (lambda xs: np.concatenate(xs) if xs else np.zeros(0))
     return QuadraticMap.from_terms(2 * n, names, (cat(rows_q), cat(a_q), cat(b_q), cat(v_q)), ([], [], []))

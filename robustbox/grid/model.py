@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass
+from typing import Callable
 
 import numpy as np
 import pyomo.environ as pyo
@@ -21,7 +22,7 @@ from ..errors import NetworkError, SolverError
 from ..quadratic import QuadraticMap
 from ..solve import SolveResult, solve_model
 from .forms import angle_forms, branch_flow_forms, injection_forms
-from .network import BRANCH_ANGLE_HIGH, BRANCH_ANGLE_LOW, BUS_P_LOAD, BUS_Q_LOAD, BRANCH_LIMIT_A, BUS_V_ANG, BUS_V_MAG, BUS_V_HIGH, BUS_V_LOW, Network
+from .network import BRANCH_ANGLE_HIGH, BRANCH_ANGLE_LOW, BUS_NUMBER, BUS_P_LOAD, BUS_Q_LOAD, BRANCH_LIMIT_A, BUS_V_ANG, BUS_V_MAG, BUS_V_HIGH, BUS_V_LOW, Network
 from .system import OperatingPoint
 
 
@@ -166,19 +167,20 @@ def _point_of(net: Network, model: pyo.ConcreteModel, objective: float) -> Opera
 
 
 def solve_opf(net: Network, margin: float = 0.0, tol: float = 1e-8, compare_base: bool = True,
-              margin_gen: float | None = None, start: OperatingPoint | None = None) -> OPFResult:
+              margin_gen: float | None = None, start: OperatingPoint | None = None,
+              base: "OPFResult | None" = None, max_iter: int = 3000) -> OPFResult:
     """Solve the AC-OPF (tightened by ``margin``; ``margin_gen`` for generator P and Q, see build_opf) with Ipopt.
 
-    With a margin and ``compare_base``, the untightened OPF is solved first and
-    its optimum is reported beside the tightened one (the price of security);
-    its solution is then Ipopt's starting point, else ``start`` if given (e.g.
-    the previous interval of a time series), else a flat start.
+    With a margin and ``compare_base``, the untightened OPF is solved first (or ``base`` is used)
+    and its optimum is reported beside the tightened one (the price of security); its solution is
+    then Ipopt's starting point, else ``start`` if given (e.g. the previous interval of a time
+    series), else a flat start.  ``max_iter`` caps Ipopt's iterations (a cap reached is a failure).
     """
     t0 = time.perf_counter()
     base_obj = None
     warm = start
     if margin > 0 and compare_base:
-        base = solve_opf(net, 0.0, tol, compare_base=False)
+        base = base or solve_opf(net, 0.0, tol, compare_base=False)
         base_obj, warm = base.objective_per_h, base.point
     model = build_opf(net, margin, margin_gen)
     if warm is not None:
@@ -191,7 +193,7 @@ def solve_opf(net: Network, margin: float = 0.0, tol: float = 1e-8, compare_base
             model.pg[g].set_value(float(np.clip(warm.pg_pu[g], model.pg[g].lb, model.pg[g].ub)))
             model.qg[g].set_value(float(np.clip(warm.qg_pu[g], model.qg[g].lb, model.qg[g].ub)))
     try:
-        res = solve_model(model, tol=tol)
+        res = solve_model(model, tol=tol, options={"max_iter": max_iter})
     except SolverError as exc:
         what = f"with margin {margin:g}" if margin else "without margin"
         raise SolverError(f"{net.source}: AC-OPF {what}: {exc}") from None
@@ -200,3 +202,77 @@ def solve_opf(net: Network, margin: float = 0.0, tol: float = 1e-8, compare_base
     inc = None if base_obj is None else obj - base_obj
     return OPFResult(point, obj, margin, base_obj if margin > 0 else obj, inc, res.status,
                      time.perf_counter() - t0, res)
+
+
+MARGIN_LADDER = (0.1, 0.05, 0.02, 0.01, 0.005)  # tried in turn when no margin is given (common practice, no source)
+LADDER_MAX_ITER = 400  # Ipopt iterations per rung: a rung that needs more is treated as failed (fail fast)
+
+
+def find_operating_point(net: Network, margin: float | None = None,
+                         say: Callable[[str], None] | None = None) -> OPFResult:
+    """The operating point for a certificate: the AC-OPF with the largest margin of MARGIN_LADDER that solves.
+
+    With ``margin`` given, exactly that margin.  Otherwise the untightened OPF is solved first (its
+    optimum is the cost reference and the warm start), then each margin in turn, each capped at
+    LADDER_MAX_ITER iterations; ``say`` receives one line per attempt.  When no margin solves, the
+    SolverError names the limits that leave no room at the untightened optimum (in MW, Mvar, pu, MVA).
+    """
+    if margin is not None:
+        return solve_opf(net, margin)
+    say = say or (lambda _line: None)
+    try:
+        base = solve_opf(net, 0.0, compare_base=False)
+    except SolverError as exc:
+        raise SolverError(f"{exc}. No operating point at all: check the case's limits and loads") from None
+    say(f"operating point: untightened AC-OPF {base.objective_per_h:.2f} $/h ({base.time_s:.1f} s)")
+    for m in MARGIN_LADDER:
+        try:
+            res = solve_opf(net, m, base=base, max_iter=LADDER_MAX_ITER)
+        except SolverError as exc:
+            say(f"operating point: margin {m:g} not found ({str(exc).split(': ', 2)[-1]})")
+            continue
+        say(f"operating point: margin {m:g}, {res.objective_per_h:.2f} $/h, +{res.cost_increase_pct:.3g} % over the "
+            f"untightened optimum ({res.time_s:.1f} s)")
+        return res
+    tight = limits_without_room(net, base.point)
+    raise SolverError(f"{net.source}: no operating point keeps even {MARGIN_LADDER[-1]:g} of every limit's range in "
+                      f"reserve, so no box can be certified around one. At the least-cost point these limits have "
+                      f"no room: {'; '.join(tight) if tight else '(none at its bound: the margin OPF failed numerically)'}. "
+                      "Give a point with --point, or relax those limits if the data allow")
+
+
+def limits_without_room(net: Network, op: OperatingPoint, rel: float = 1e-4, count: int = 8) -> list[str]:
+    """Limits at (within ``rel`` of the range from) their bounds at ``op``, in engineering units, tightest first."""
+    base = net.base_mva
+    out: list[tuple[float, str]] = []
+    vm = op.vm_pu
+    lo, hi = net.bus[:, BUS_V_LOW], net.bus[:, BUS_V_HIGH]
+    width = np.maximum(hi - lo, 1e-9)
+    for i in range(net.n_bus):
+        for gap, side, bound in ((hi[i] - vm[i], "upper", hi[i]), (vm[i] - lo[i], "lower", lo[i])):
+            if gap <= rel * width[i]:
+                out.append((gap / width[i], f"|V| at bus {int(net.bus[i, BUS_NUMBER])} = {vm[i]:.4f} pu at its "
+                                            f"{side} limit {bound:.4f} pu"))
+    lim = net.gen_limits_pu()
+    for k, row in enumerate(net.gen_on):
+        for key, val, unit in (("p", op.pg_pu[k], "MW"), ("q", op.qg_pu[k], "Mvar")):
+            a, b = lim[f"{key}min"][k], lim[f"{key}max"][k]
+            w = b - a if np.isfinite(b - a) and b > a else 0.0
+            if w <= 0:
+                continue
+            for gap, side, bound in ((b - val, "upper", b), (val - a, "lower", a)):
+                if gap <= rel * w:
+                    out.append((gap / w, f"{key.upper()} of generator row {net.file_row('gen', int(row))} at bus "
+                                         f"{int(net.gen[row, 0])} = {val * base:.2f} {unit} at its {side} limit "
+                                         f"{bound * base:.2f} {unit}"))
+    _, yf, yt = net.admittance()
+    v = op.voltage
+    f, t = net.branch_ends()
+    rate = net.branch[net.branch_on, BRANCH_LIMIT_A]
+    flow = np.maximum(np.abs(v[f] * np.conj(yf @ v)), np.abs(v[t] * np.conj(yt @ v))) * base
+    for k in np.flatnonzero((rate > 0) & (flow >= rate * (1 - rel))):
+        br = net.branch[net.branch_on[k]]
+        out.append(((rate[k] - flow[k]) / rate[k], f"flow on branch {int(br[0])}-{int(br[1])} = {flow[k]:.1f} MVA at "
+                                                   f"its rating {rate[k]:.1f} MVA"))
+    out.sort(key=lambda x: x[0])
+    return [text for _, text in out[:count]]

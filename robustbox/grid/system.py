@@ -423,7 +423,7 @@ def _flow_polygon(net: Network, rated: np.ndarray, first: int, n_rows: int, face
     names = []
     for k in rated:
         r = int(net.branch_on[k])
-        tag = f"{int(net.branch[r, 0])}-{int(net.branch[r, 1])}#{r + 1}"
+        tag = f"{int(net.branch[r, 0])}-{int(net.branch[r, 1])}#{net.file_row('branch', r)}"
         for side in "ft":
             names += [f"S{side}[{tag}]@{np.degrees(phi):.0f}deg" for phi in phis]
     return w, upper, tuple(names)
