@@ -609,12 +609,90 @@ def _lp_box(eng: _Conditions, omega: np.ndarray, wl: np.ndarray, wu: np.ndarray,
     return -x[s:], x[:s]
 
 
+def _uniform_best(system: QuadraticSystem, point: np.ndarray, k: np.ndarray, policy: str, eng: "_Conditions",
+                  options: CertifyOptions, wl: np.ndarray, wu: np.ndarray
+                  ) -> tuple[float, "_Conditions", np.ndarray, np.ndarray, str]:
+    """The largest uniform fraction t, around the given point or (asymmetric bands, ``recenter``) the solution
+    at the box centre, whichever certifies more; returns (t, engine, ω, point, policy text)."""
+    recenter = options.recenter and bool(np.any(wl != wu))
+    # with recentring ahead, the box around the given point is only its starting bracket: coarse
+    first = replace(options, precision=max(options.precision, 0.02)) if recenter else options
+    t, omega = _uniform(eng, first, wl, wu)
+    if recenter and t < options.max_fraction:
+        t_cap = min(options.max_fraction, _max_t_at(eng, omega, wl, wu, limits_only=True) * 4.0)
+        del eng  # one engine at a time (each holds dense rows × m bounds): rebuilt below if needed
+        moved = _recentered(system, point, options, wl, wu, t, max(t_cap, t))
+        if moved is not None and moved[0] > t:
+            t, eng, omega = moved
+            return t, eng, omega, eng.point, eng.policy + "; operating point moved to the solution at the box centre"
+        eng = _Conditions(system, point, k, policy, options.remainder)
+        if first is not options:
+            t, omega = _uniform(eng, options, wl, wu)  # the given point stays: full precision
+    return t, eng, omega, point, policy
+
+
+def _grow_each(eng: _Conditions, opts: CertifyOptions, lower: np.ndarray, upper: np.ndarray, omega: np.ndarray,
+               cap: np.ndarray, weights: np.ndarray, steps: int = 12) -> tuple[np.ndarray, np.ndarray]:
+    """Each injection's upper end in turn (largest weight first), grown by bisection to the largest value that
+    still certifies with the others held; every accepted box is rechecked with proven bounds."""
+    upper = upper.copy()
+    for k in np.argsort(-weights, kind="stable"):
+        if not weights[k] > 0 or upper[k] >= cap[k]:
+            continue
+
+        def certified(value: float):
+            trial = upper.copy()
+            trial[k] = value
+            found, om = eng.least_omega(lower, trial, opts.inflation, opts.max_iterations)
+            return om if found and eng.check(lower, trial, om).holds else None
+
+        lo, hi = upper[k], cap[k]
+        om = certified(hi)
+        if om is not None:
+            upper[k], omega = hi, om
+            continue
+        for _ in range(steps):
+            mid = 0.5 * (lo + hi)
+            om = certified(mid)
+            if om is not None:
+                lo, omega = mid, om
+            else:
+                hi = mid
+        upper[k] = lo
+    return upper, omega
+
+
+def _worse_than_uniform(objective: str, lower: np.ndarray, upper: np.ndarray, t: float, wl: np.ndarray,
+                        wu: np.ndarray, weights: np.ndarray) -> bool:
+    """Whether the LP's box scores below the certified uniform box [−t wl, t wu] on the objective's own measure."""
+    if objective == "volume":
+        keep = weights > 0
+        def logvol(w: np.ndarray) -> float:
+            return float(np.sum(np.log(np.maximum(w[keep], 1e-300))))
+        return logvol(upper - lower) < logvol(t * (wu + wl))
+    if objective == "hosting":
+        return float(weights @ upper) < float(weights @ (t * wu))
+    return float(weights @ (upper - lower)) < float(weights @ (t * (wu + wl)))
+
+
 def _volume_box(a_ub: np.ndarray, b_ub: np.ndarray, lb: np.ndarray, ub: np.ndarray,
                 weights: np.ndarray) -> np.ndarray | None:
     """Maximise Σ_k [w_k > 0] log(u_k + ln_k) (the box's log-volume) under the same rows: a conic program."""
     import cvxpy as cp
 
     s = len(weights)
+    # rows scaled to unit largest entry; entries below 1e-12 of it dropped with their largest effect moved to
+    # the right-hand side (x is boxed in [lb, ub]), so every kept row is tighter than the original one
+    scale = np.max(np.abs(a_ub), axis=1, initial=0.0) if a_ub.size else np.zeros(0)
+    scale = np.where(scale > 0, scale, 1.0)
+    a_ub, b_ub = a_ub / scale[:, None], b_ub / scale
+    tiny = (np.abs(a_ub) < 1e-12) & (a_ub != 0)
+    if np.any(tiny):
+        worst = np.where(a_ub > 0, a_ub * ub[None, :], a_ub * lb[None, :])
+        b_ub = b_ub - np.sum(np.where(tiny, worst, 0.0), axis=1)
+        a_ub = np.where(tiny, 0.0, a_ub)
+        if np.any(b_ub < 0):
+            return None
     x = cp.Variable(2 * s)
     keep = np.flatnonzero(weights > 0)
     width = x[:s][keep] + x[s:][keep]
@@ -796,25 +874,11 @@ def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "
             raise CertificateError("the box must contain the operating point (lower ≤ 0 ≤ upper)")
         _, omega = eng.least_omega(lower, upper, options.inflation, options.max_iterations)
     elif objective == "uniform":
-        recenter = options.recenter and bool(np.any(wl != wu))
-        # with recentring ahead, the box around the given point is only its starting bracket: coarse
-        first = replace(options, precision=max(options.precision, 0.02)) if recenter else options
-        t, omega = _uniform(eng, first, wl, wu)
-        if recenter and t < options.max_fraction:
-            t_cap = min(options.max_fraction, _max_t_at(eng, omega, wl, wu, limits_only=True) * 4.0)
-            del eng  # one engine at a time (each holds dense rows × m bounds): rebuilt below if needed
-            moved = _recentered(system, point, options, wl, wu, t, max(t_cap, t))
-            if moved is not None and moved[0] > t:
-                t, eng, omega = moved
-                point = eng.point
-                policy = eng.policy + "; operating point moved to the solution at the box centre"
-            else:
-                eng = _Conditions(system, point, k, policy, options.remainder)
-                if first is not options:
-                    t, omega = _uniform(eng, options, wl, wu)  # the given point stays: full precision
+        t, eng, omega, point, policy = _uniform_best(system, point, k, policy, eng, options, wl, wu)
         lower, upper = -t * wl, t * wu
     elif objective in ("hosting", "widths", "volume"):
-        t, omega_u = _uniform(eng, options, wl, wu)
+        # from the best uniform box (recentred when that is larger): never worse than it
+        t, eng, omega_u, point, policy = _uniform_best(system, point, k, policy, eng, options, wl, wu)
         if objective == "hosting":
             # the whole lower side if it can be kept, else the largest uniform fraction of it (certified above)
             try:
@@ -822,9 +886,15 @@ def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "
             except CertificateError:
                 lower_kept = t * (1.0 - 1e-6)  # just inside the certified uniform box: the LP shrinks its rows by 1e-7
                 lower, upper, omega = _lp_search(eng, options, wl, wu, weights, lower_kept, omega_u)
+            if _worse_than_uniform(objective, lower, upper, t, wl, wu, weights) and lower_kept >= 1.0:
+                lower, upper, omega = -t * wl, t * wu, omega_u
+            upper, omega = _grow_each(eng, options, lower, upper, omega, options.max_fraction * wu, weights)
         else:
-            lower, upper, omega = _lp_search(eng, options, wl, wu, weights, None, omega_u, objective == "volume")
-        if objective == "widths" and weights @ (upper - lower) < weights @ (t * (wu + wl)):
+            try:
+                lower, upper, omega = _lp_search(eng, options, wl, wu, weights, None, omega_u, objective == "volume")
+            except CertificateError:  # the uniform box is certified: never worse than it
+                lower, upper, omega = -t * wl, t * wu, omega_u
+        if _worse_than_uniform(objective, lower, upper, t, wl, wu, weights):
             lower, upper, omega = -t * wl, t * wu, omega_u
     else:
         raise CertificateError(f"unknown objective '{objective}' (uniform, hosting, widths, volume, verify)")

@@ -97,6 +97,8 @@ def _cmd_certify(args: argparse.Namespace) -> int:
     if args.uncertain == "loads" and args.band >= 1.0:
         raise NetworkError(f"--band {args.band:g} with --uncertain loads lets loads reach zero or change sign; "
                            "use a band below 1 (a fraction of each load)")
+    if args.max_fraction is None:
+        args.max_fraction = HOSTING_REACH if args.objective == "hosting" else 1.0
     if not (args.max_fraction > 0 and math.isfinite(args.max_fraction)):
         raise NetworkError(f"--max-fraction must be a positive number, got {args.max_fraction}")
     if args.margin is not None and not (0 <= args.margin < 0.5):
@@ -117,7 +119,7 @@ def _cmd_certify(args: argparse.Namespace) -> int:
     else:
         res = certify_case(args.case, args.uncertain, args.band, args.objective, args.margin, point,
                            args.policy or "slack", CertifyOptions(max_fraction=args.max_fraction),
-                           point_source=args.point or "point file", say=_say(args))
+                           point_source=args.point or "point file", say=_say(args), site_mw=args.site_mw)
         data = result_to_json(res)
         _print_summary(data)
     if args.out:
@@ -266,6 +268,7 @@ def _cmd_profile_demo(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+HOSTING_REACH = 10.0  # default search reach of --objective hosting, × the band (common practice, no source)
 MARGIN_HELP = ("limit margin of the operating-point AC-OPF: every limit tightened by this fraction of its range "
                "(flows: of the rating). Default: the largest of 0.1, 0.05, 0.02, 0.01, 0.005 that solves; 0: the "
                "untightened optimum (no room: a zero box)")
@@ -293,13 +296,20 @@ def build_parser() -> argparse.ArgumentParser:
                         "(unmarked cases: five sites up to band × 100 MW); with bus numbers, each site up to "
                         "band × 100 MW")
     c.add_argument("--objective", choices=["uniform", "hosting", "widths", "volume"], default="uniform",
-                   help="uniform fraction of the band | hosting (upper ends, lower fixed) | widths | volume")
+                   help="uniform: the largest common fraction of the band | hosting: each site's own largest upper "
+                        "end (the sum is maximised; lower ends kept), searched up to --max-fraction (default 10) × "
+                        "the band | widths: the largest sum of relative widths | volume: the largest log-volume; "
+                        "widths, hosting and volume never do worse than uniform")
+    c.add_argument("--site-mw", type=float, default=100.0,
+                   help="size of a site given by bus number (and of the five default renewable sites), MW: each "
+                        "injects 0..band × site-mw (default 100)")
     c.add_argument("--margin", type=float, default=None, help=MARGIN_HELP)
     c.add_argument("--point", help="operating point JSON (from 'robustbox opf') instead of the margin OPF")
     c.add_argument("--policy", choices=["slack", "distributed"], default=None,
                    help="recourse policy (default slack; with --contingencies distributed)")
-    c.add_argument("--max-fraction", type=float, default=1.0,
-                   help="look beyond the band up to this multiple of it (default 1: stop at the band)")
+    c.add_argument("--max-fraction", type=float, default=None,
+                   help="look beyond the band up to this multiple of it (default 1: stop at the band; "
+                        f"{HOSTING_REACH:g} for --objective hosting)")
     c.add_argument("--out", help="write the result JSON (the box file) here; must not exist")
     c.add_argument("--csv", help="write the box as CSV here (one row per injection, MW/Mvar); must not exist")
     c.add_argument("--report", help="write figures and report.html into this folder")

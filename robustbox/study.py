@@ -41,8 +41,11 @@ class CaseCertificate:
     max_fraction: float = 1.0
 
 
-def scenario_injections(net: Network, uncertain: str | Sequence[int], band: float) -> tuple[list[Injection], str]:
-    """Injections for 'loads', 'renewables' or an explicit list of bus numbers (sites 0..band×100 MW)."""
+def scenario_injections(net: Network, uncertain: str | Sequence[int], band: float,
+                        site_mw: float = 100.0) -> tuple[list[Injection], str]:
+    """Injections for 'loads', 'renewables' or an explicit list of bus numbers (sites 0..band × site_mw MW)."""
+    if not (site_mw > 0 and np.isfinite(site_mw)):
+        raise NetworkError(f"site size must be a positive number of MW, got {site_mw}")
     if not band > 0 or not np.isfinite(band):
         raise NetworkError(f"band must be a positive number, got {band}")
     if isinstance(uncertain, str) and uncertain == "loads":
@@ -52,11 +55,12 @@ def scenario_injections(net: Network, uncertain: str | Sequence[int], band: floa
             inj = [Injection(int(b), "p", 0.0, band * cap / net.base_mva) for b, _, cap in net.sites[:, :3]]
             return inj, f"renewables: the case's {len(inj)} marked sites, each 0..{band:g} × capacity above nominal"
         buses = largest_load_pq_buses(net, 5)
-        return site_injections(net, buses, band), (f"renewables: five sites at the largest-load PQ buses "
-                                                   f"{buses}, each injecting 0..{band * 100:g} MW")
+        return site_injections(net, buses, band, site_mw), (f"renewables: five sites at the largest-load PQ buses "
+                                                            f"{buses}, each injecting 0..{band * site_mw:g} MW")
     if isinstance(uncertain, str):
         raise NetworkError(f"unknown uncertainty '{uncertain}': use loads, renewables or a list of bus numbers")
-    return site_injections(net, list(uncertain), band), f"sites at buses {list(uncertain)}, each 0..{band * 100:g} MW"
+    return (site_injections(net, list(uncertain), band, site_mw),
+            f"sites at buses {list(uncertain)}, each 0..{band * site_mw:g} MW")
 
 
 def point_to_json(net: Network, op: OperatingPoint) -> dict:
@@ -138,12 +142,12 @@ def power_flow_point(net: Network) -> OperatingPoint:
 def certify_case(case: str | Path | Network, uncertain: str | Sequence[int] = "loads", band: float = 0.05,
                  objective: Objective = "uniform", margin: float | None = None, point: dict | None = None,
                  policy: str = "slack", options: CertifyOptions = CertifyOptions(),
-                 point_source: str = "point file", say=None) -> CaseCertificate:
+                 point_source: str = "point file", say=None, site_mw: float = 100.0) -> CaseCertificate:
     """Operating point (``point``, else the margin AC-OPF: ``margin``, or by default the largest margin of
     :data:`~robustbox.grid.model.MARGIN_LADDER` that solves; ``say`` gets one line per attempt), then the
     certificate for the chosen uncertainty."""
     net = case if isinstance(case, Network) else read_case(case)
-    injections, scenario = scenario_injections(net, uncertain, band)
+    injections, scenario = scenario_injections(net, uncertain, band, site_mw)
     opf = None
     if point is None:
         opf = find_operating_point(net, margin, say)

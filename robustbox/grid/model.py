@@ -235,9 +235,12 @@ def find_operating_point(net: Network, margin: float | None = None,
             f"untightened optimum ({res.time_s:.1f} s)")
         return res
     tight = limits_without_room(net, base.point)
+    lim = net.gen_limits_pu()
+    load_mw, cap_mw = net.load_pu().real.sum() * net.base_mva, lim["pmax"].sum() * net.base_mva
     raise SolverError(f"{net.source}: no operating point keeps even {MARGIN_LADDER[-1]:g} of every limit's range in "
-                      f"reserve, so no box can be certified around one. At the least-cost point these limits have "
-                      f"no room: {'; '.join(tight) if tight else '(none at its bound: the margin OPF failed numerically)'}. "
+                      f"reserve, so no box can be certified around one (load {load_mw:.1f} MW against "
+                      f"{cap_mw:.1f} MW of generation capacity in service). At the least-cost point these limits "
+                      f"have no room: {'; '.join(tight) if tight else '(none at its bound: the margin OPF failed numerically)'}. "
                       "Give a point with --point, or relax those limits if the data allow")
 
 
