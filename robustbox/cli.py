@@ -130,6 +130,9 @@ def _cmd_certify(args: argparse.Namespace) -> int:
         print(f"wrote {args.csv}")
     if args.report:
         from .report import write_report
+        say = _say(args)
+        if say:
+            say("report: sampling the slice and drawing the figures")
         print(f"wrote {write_report(res, args.report, pair=pair)}")
     return EXIT_OK
 

@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import base64
 import html
+import re
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -15,27 +16,44 @@ import numpy as np  # noqa: E402
 
 from .errors import NetworkError  # noqa: E402
 from .grid.network import BUS_NUMBER, BUS_V_HIGH, BUS_V_LOW  # noqa: E402
-from .study import CAUTION, CaseCertificate, result_to_json  # noqa: E402
+from .study import CAUTION, CaseCertificate, result_to_json, write_box_csv  # noqa: E402
 from .validate import ValidationReport, evaluate_points  # noqa: E402
 
 if TYPE_CHECKING:
     from .envelopes import EnvelopeRow, EnvelopeRun, EnvelopeSettings
 
 
+FIGURE_ROWS = 30  # components drawn in the envelope figure and listed in the HTML table (common practice, no source)
+SAFE = {"band": "#cccccc", "box": "#0072b2", "bad": "#d55e00", "good": "#009e73", "site": "#e69f00"}  # Okabe-Ito
+
+
+def _share(e: dict) -> float:
+    """Certified width over requested width of one box entry (1 when nothing was requested)."""
+    asked = e["requested_upper"] - e["requested_lower"]
+    return (e["upper"] - e["lower"]) / asked if asked > 0 else 1.0
+
+
+def tightest(box: list[dict], count: int = FIGURE_ROWS) -> list[dict]:
+    """The ``count`` box entries with the smallest certified share of their requested band."""
+    return sorted(box, key=_share)[:count]
+
+
 def envelope_figure(data: dict, path: Path) -> Path:
-    """Per-injection bars: requested band, certified range, nominal value."""
-    box = data["box"]
-    fig, ax = plt.subplots(figsize=(8, 0.35 * len(box) + 1.5))
-    for k, e in enumerate(box):
-        ax.barh(k, e["requested_upper"] - e["requested_lower"], left=e["requested_lower"], color="#d9d9d9",
-                label="requested band" if k == 0 else None)
-        ax.barh(k, e["upper"] - e["lower"], left=e["lower"], height=0.5, color="#2b8cbe",
-                label="certified range" if k == 0 else None)
-        ax.plot([e["nominal"]], [k], "k|", markersize=12, label="nominal" if k == 0 else None)
-    ax.set_yticks(range(len(box)), [f"bus {e['bus']} {e['quantity'].upper()} ({e['unit']})" for e in box])
-    ax.set_xlabel("net injection (generation positive)")
-    ax.set_title(f"Certified injection envelope — {data['certified_fraction']:.3g} of the requested band")
-    ax.legend(loc="best", fontsize=8)
+    """Certified share of the requested band per component, tightest first, at most FIGURE_ROWS rows."""
+    rows = tightest(data["box"])
+    shares = np.array([_share(e) for e in rows])
+    fig, ax = plt.subplots(figsize=(8, 0.28 * len(rows) + 1.6))
+    y = np.arange(len(rows))[::-1]
+    ax.barh(y, np.ones(len(rows)), color=SAFE["band"], label="requested band (= 1)")
+    ax.barh(y, shares, height=0.55, color=SAFE["box"], label="certified share")
+    ax.set_yticks(y, [f"bus {e['bus']} {e['quantity'].upper()}  {e['lower']:.4g}…{e['upper']:.4g} {e['unit']}"
+                      for e in rows], fontsize=7)
+    ax.set_xlim(0, max(1.05, float(shares.max(initial=1.0)) * 1.05))
+    ax.set_xlabel("certified width / requested width")
+    more = len(data["box"]) - len(rows)
+    ax.set_title("Certified share of the requested band, tightest first"
+                 + (f" ({len(rows)} of {len(data['box'])}; all in the CSV)" if more > 0 else ""), fontsize=9)
+    ax.legend(loc="lower right", fontsize=7)
     fig.tight_layout()
     fig.savefig(path, dpi=110)
     plt.close(fig)
@@ -56,38 +74,75 @@ def slice_figure(res: CaseCertificate, path: Path, pair: tuple[int, int] = (0, 1
     out = evaluate_points(res.network, nsys.operating_point, inj, pts, nsys.policy, nsys.participation)
     ok = np.array([m is not None and min(v for v, _ in m.values()) >= 0 for m in out])
     fig, ax = plt.subplots(figsize=(5.5, 5))
-    ax.scatter(pts[ok, i] * base, pts[ok, j] * base, s=10, c="#74c476", label="AC feasible (sampled)")
-    ax.scatter(pts[~ok, i] * base, pts[~ok, j] * base, s=10, c="#fb6a4a", label="infeasible or limit violated")
+    ax.scatter(pts[ok, i] * base, pts[ok, j] * base, s=10, c=SAFE["good"], label="AC feasible (sampled)")
+    ax.scatter(pts[~ok, i] * base, pts[~ok, j] * base, s=10, c=SAFE["bad"], marker="x",
+               label="infeasible or limit violated")
     lo, hi = cert.lower * base, cert.upper * base
-    ax.add_patch(plt.Rectangle((lo[i], lo[j]), hi[i] - lo[i], hi[j] - lo[j], fill=False, lw=2, ec="#08519c",
+    ax.add_patch(plt.Rectangle((lo[i], lo[j]), hi[i] - lo[i], hi[j] - lo[j], fill=False, lw=2, ec=SAFE["box"],
                                label="certified box"))
     ax.set_xlabel(f"Δ {inj[i].name} ({'MW' if inj[i].quantity == 'p' else 'Mvar'})")
     ax.set_ylabel(f"Δ {inj[j].name} ({'MW' if inj[j].quantity == 'p' else 'Mvar'})")
     ax.legend(fontsize=7, loc="lower left")
-    ax.set_title("Certified box inside the sampled feasible region")
+    ax.set_title("Certified box inside the sampled feasible region\n(all other injections held at nominal)",
+                 fontsize=9)
     fig.tight_layout()
     fig.savefig(path, dpi=110)
     plt.close(fig)
     return path
 
 
-def network_figure(res: CaseCertificate, path: Path) -> Path:
-    """Network sketch coloured by the voltage margin at the operating point (pu)."""
+def _binding_element(condition: str) -> tuple[str, object] | None:
+    """("bus", number) or ("branch", (from, to)) named by a certificate condition, if any."""
+    m = re.search(r"S[ft]\[(\d+)-(\d+)#|angle(?:max|min)\[(\d+)-(\d+)#", condition)
+    if m:
+        a, b = (m[1], m[2]) if m[1] else (m[3], m[4])
+        return "branch", (int(a), int(b))
+    m = re.search(r"(?:Qgen|V2|P|Q)\[(\d+)\]|Pgen\[(?:generator row \d+ at bus )?(\d+)\]", condition)
+    if m:
+        return "bus", int(m[1] or m[2])
+    return None
+
+
+def network_figure(res: CaseCertificate, path: Path, condition: str = "") -> Path:
+    """Network sketch: voltage margin at the operating point, the uncertain sites, the binding element."""
     net = res.network
     op = res.nsys.operating_point
+    number = [int(b) for b in net.bus[:, BUS_NUMBER]]
     graph = nx.Graph()
     f, t = net.branch_ends()
     graph.add_nodes_from(range(net.n_bus))
     graph.add_edges_from(zip(f.tolist(), t.tolist()))
     pos = nx.kamada_kawai_layout(graph) if net.n_bus <= 400 else nx.spring_layout(graph, seed=1)
     margin = np.minimum(net.bus[:, BUS_V_HIGH] - op.vm_pu, op.vm_pu - net.bus[:, BUS_V_LOW])
-    fig, ax = plt.subplots(figsize=(6.5, 5.5))
-    nx.draw_networkx_edges(graph, pos, ax=ax, edge_color="#999999")
-    nodes = nx.draw_networkx_nodes(graph, pos, ax=ax, node_color=margin, cmap="RdYlGn", node_size=120)
-    if net.n_bus <= 60:
-        nx.draw_networkx_labels(graph, pos, {i: str(int(b)) for i, b in enumerate(net.bus[:, BUS_NUMBER])}, font_size=6, ax=ax)
-    fig.colorbar(nodes, ax=ax, label="voltage margin (pu)")
-    ax.set_title("Voltage margin at the operating point")
+    big = net.n_bus > 300
+    fig, ax = plt.subplots(figsize=(7.5, 6.2))
+    nx.draw_networkx_edges(graph, pos, ax=ax, edge_color="#bbbbbb", width=0.4 if big else 1.0)
+    nodes = nx.draw_networkx_nodes(graph, pos, ax=ax, node_color=margin, cmap="cividis",
+                                   node_size=8 if big else 120)
+    index = net.bus_index
+    sites = sorted({index[i.bus] for i in res.nsys.injections})
+    nx.draw_networkx_nodes(graph, pos, nodelist=sites, ax=ax, node_shape="s", node_color="none",
+                           edgecolors=SAFE["site"], linewidths=1.5, node_size=40 if big else 220,
+                           label="uncertain injection")
+    labels = {i: str(number[i]) for i in range(net.n_bus)} if net.n_bus <= 60 else \
+        {i: str(number[i]) for i in sites[:FIGURE_ROWS]}
+    element = _binding_element(condition)
+    if element and element[0] == "bus" and element[1] in index:
+        k = index[element[1]]
+        nx.draw_networkx_nodes(graph, pos, nodelist=[k], ax=ax, node_shape="*", node_color=SAFE["bad"],
+                               node_size=260, label=f"binding: bus {element[1]}")
+        labels[k] = str(element[1])
+    elif element and element[0] == "branch":
+        a, b = element[1]  # type: ignore[misc]
+        if a in index and b in index:
+            nx.draw_networkx_edges(graph, pos, edgelist=[(index[a], index[b])], ax=ax, edge_color=SAFE["bad"],
+                                   width=3.0, label=f"binding: branch {a}-{b}")
+            labels[index[a]], labels[index[b]] = str(a), str(b)
+    nx.draw_networkx_labels(graph, pos, labels, font_size=6, ax=ax,
+                            bbox={"boxstyle": "round,pad=0.1", "fc": "white", "ec": "none", "alpha": 0.8})
+    fig.colorbar(nodes, ax=ax, label="voltage margin at the operating point (pu)")
+    ax.set_title("Network: voltage margin, uncertain injections, binding element", fontsize=9)
+    ax.legend(loc="lower left", fontsize=7)
     ax.axis("off")
     fig.tight_layout()
     fig.savefig(path, dpi=110)
@@ -104,7 +159,8 @@ def write_report(res: CaseCertificate, folder: str | Path, validation: Validatio
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     data = result_to_json(res)
-    figs = [envelope_figure(data, folder / "envelope.png"), network_figure(res, folder / "network.png")]
+    figs = [envelope_figure(data, folder / "envelope.png"),
+            network_figure(res, folder / "network.png", data["binding_condition"])]
     names = [inj.name for inj in res.nsys.injections]
     if pair is not None:
         missing = [p for p in pair if p not in names]
@@ -116,8 +172,14 @@ def write_report(res: CaseCertificate, folder: str | Path, validation: Validatio
         idx = (0, 1)
     if len(names) >= 2:
         figs.insert(1, slice_figure(res, folder / "slice.png", idx))
-    rows = "".join(f"<tr><td>{e['bus']}</td><td>{e['quantity'].upper()}</td><td>{e['nominal']:.2f}</td>"
-                   f"<td>{e['lower']:.2f}</td><td>{e['upper']:.2f}</td><td>{e['unit']}</td></tr>" for e in data["box"])
+    write_box_csv(data, folder / "box.csv")
+    shown = tightest(data["box"])
+    rows = "".join(f"<tr><td>{e['bus']}</td><td>{e['quantity'].upper()}</td><td>{e['nominal']:.6g}</td>"
+                   f"<td>{e['lower']:.6g}</td><td>{e['upper']:.6g}</td><td>{e['unit']}</td><td>{_share(e):.4g}</td></tr>"
+                   for e in shown)
+    if len(shown) < len(data["box"]):
+        rows += (f"<tr><td colspan=7>… {len(data['box']) - len(shown)} more injections in box.csv "
+                 "(the tightest are listed)</td></tr>")
     imgs = _embedded(figs)
     val = ""
     if validation is not None:
@@ -134,16 +196,25 @@ def write_report(res: CaseCertificate, folder: str | Path, validation: Validatio
 <p>{html.escape(res.scenario)}.</p><p>Status: <b>{data['status']}</b>; certified fraction of the requested band:
 <b>{data['certified_fraction']:.4g}</b>; binding condition: {html.escape(data['binding_limit'])}.</p>
 <p>Recourse policy: {html.escape(data['operating_point']['policy'])}.</p>{opf_html}
-<table><tr><th>bus</th><th>quantity</th><th>nominal</th><th>certified lower</th><th>certified upper</th><th>unit</th></tr>
+<h2>Box (tightest first)</h2>
+<table><tr><th>bus</th><th>quantity</th><th>nominal</th><th>certified lower</th><th>certified upper</th><th>unit</th><th>share of band</th></tr>
 {rows}</table>{val}{imgs}""")
     out = folder / "report.html"
     out.write_text(page, encoding="utf-8")
     return out
 
 
+CAPTIONS = {
+    "envelope": "Certified width of each injection over its requested width, tightest first.",
+    "slice": "A 2-D slice through two injections (all other injections held at nominal): sampled AC power "
+             "flows and the certified box.",
+    "network": "Voltage margin at the operating point; squares mark uncertain injections, red the binding element.",
+}
+
+
 def _embedded(figs: list[Path]) -> str:
-    return "".join(f'<p><img alt="{p.stem}" src="data:image/png;base64,{base64.b64encode(p.read_bytes()).decode()}"/></p>'
-                   for p in figs)
+    return "".join(f'<figure><img alt="{p.stem}" src="data:image/png;base64,{base64.b64encode(p.read_bytes()).decode()}"/>'
+                   f'<figcaption>{html.escape(CAPTIONS.get(p.stem, ""))}</figcaption></figure>' for p in figs)
 
 
 def _page(title: str, body: str) -> str:

@@ -155,7 +155,12 @@ def certify_case(case: str | Path | Network, uncertain: str | Sequence[int] = "l
     else:
         op = point_from_json(net, point, point_source)
     nsys = build_system(net, op, injections, policy)  # type: ignore[arg-type]
+    if say:
+        say(f"certificate: {len(injections)} uncertain injections, {nsys.system.equations.n_rows} equations, "
+            f"{nsys.system.limits.n_rows} monitored rows; searching the {objective} box")
     cert = certify(nsys.system, nsys.point, objective, options=options)
+    if say:
+        say(f"certificate: {cert.status} in {cert.timings_s['total_s']:.1f} s")
     return CaseCertificate(net, nsys, cert, opf, band, scenario, options.max_fraction)
 
 
