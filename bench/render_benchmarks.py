@@ -173,9 +173,10 @@ def main() -> None:
         lines.append("")
     if errors:
         lines += ["## Cases without a result", ""] + [f"- {e['case']} {e.get('scenario', '')}: {e['error']}" for e in errors] + [""]
-    envelopes = RESULTS.parent / "envelopes.md"  # written by bench/envelopes.py
-    if envelopes.exists():
-        lines += envelopes.read_text(encoding="utf-8").splitlines() + [""]
+    for part in ("default_point.md", "envelopes.md"):  # written by bench/default_point.py, bench/envelopes.py
+        path = RESULTS.parent / part
+        if path.exists():
+            lines += path.read_text(encoding="utf-8").splitlines() + [""]
     lines += ["## Figures", "", "![certified vs true](figures/certified_vs_true.png)", "",
               "![time vs buses](figures/time_vs_buses.png)", "",
               "Columns: *cost +%* — margin-OPF cost over the published AC optimum; *axis* — certified/true extent "
