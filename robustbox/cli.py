@@ -201,8 +201,10 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     out = Path(args.out) if args.out else Path.cwd() / time.strftime("robustbox-demo-%Y%m%d-%H%M%S")
     out.mkdir(parents=True, exist_ok=True)
     case = demo_case_path()
-    print("Lakeholm regional network (fictional demo grid): wind and solar sites may inject up to their full capacity")
-    res = certify_case(case, "renewables", 1.0, "uniform", 0.1, options=CertifyOptions(max_fraction=1.0))
+    print("Lakeholm regional network (fictional demo grid): how much wind and solar can each marked site host, "
+          f"up to {DEMO_REACH:g} × its planned capacity?")
+    res = certify_case(case, "renewables", 1.0, "hosting", options=CertifyOptions(max_fraction=DEMO_REACH),
+                       say=_say(args))
     data = result_to_json(res)
     _print_summary(data)
     save_json(data, out / "box.json")
@@ -271,6 +273,7 @@ def _cmd_profile_demo(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+DEMO_REACH = 3.0  # the demo asks for up to three times each site's planned capacity (invented scenario)
 HOSTING_REACH = 10.0  # default search reach of --objective hosting, × the band (common practice, no source)
 MARGIN_HELP = ("limit margin of the operating-point AC-OPF: every limit tightened by this fraction of its range "
                "(flows: of the rating). Default: the largest of 0.1, 0.05, 0.02, 0.01, 0.005 that solves; 0: the "

@@ -46,19 +46,21 @@ class FanOut:
 
 
 def progress_bar(label: str, enabled: bool | None = None) -> Callable[[int, int], None] | None:
-    """A one-line progress display on stderr (``enabled`` None: only on a terminal)."""
+    """A one-line progress display on stderr (tqdm; ``enabled`` None: only on a terminal)."""
     if enabled is None:
         enabled = sys.stderr.isatty()
     if not enabled:
         return None
+    from tqdm import tqdm
+
+    bar: dict[str, tqdm] = {}
 
     def show(done: int, total: int) -> None:
-        width = 30
-        filled = int(width * done / max(total, 1))
-        sys.stderr.write(f"\r  {label} [{'#' * filled}{'.' * (width - filled)}] {done}/{total}")
-        if done == total:
-            sys.stderr.write("\n")
-        sys.stderr.flush()
+        if "bar" not in bar:
+            bar["bar"] = tqdm(total=total, desc=f"  {label}", file=sys.stderr, leave=True, dynamic_ncols=True)
+        bar["bar"].update(done - bar["bar"].n)
+        if done >= total:
+            bar.pop("bar").close()
     return show
 
 
