@@ -16,13 +16,15 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Callable, Sequence
 
+import numpy as np
+
 
 from .certify import CertifyOptions, certify
 from .errors import CertificateError, NetworkError, OperatingPointError, SolverError
 from .fanout import FanOut, run_all
 from .grid.casefile import read_case
 from .grid.model import MARGIN_LADDER
-from .grid.network import Network
+from .grid.network import BRANCH_R, BUS_G_SHUNT, BUS_P_LOAD, GEN_P_HIGH, Network
 from .grid.security import (Outage, SCOPFResult, all_outages, default_participation, islanded_buses, outage_network,
                             post_outage_point, read_contingencies, solve_scopf)
 from .grid.system import Injection, OperatingPoint, Policy, build_system
@@ -49,7 +51,9 @@ class OutageResult:
     """Outcome on one post-outage network.
 
     status: "screened" (the candidate box verified: cannot bind), "certified" (full search),
-    "islanding" (skipped; ``detail`` names the cut-off buses) or "insecure" (no box; ``detail`` says why).
+    "islanding" (skipped; ``detail`` names the cut-off buses), "uncoverable" (a generator outage after which
+    the remaining capacity is below the load: skipped, ``detail`` gives both in MW) or "insecure" (no box;
+    ``detail`` says why).
     fraction: certified fraction of the band (for "screened": at least the candidate), 0 otherwise.
     """
 
@@ -93,7 +97,7 @@ class SecureCertificate:
     """A box certified on the intact network and on every non-islanding post-outage network.
 
     ``intact`` holds the certificate of the joint box on the intact network (objective verify,
-    its fraction the joint one); ``outages`` one result per outage: the studied ones in list order, then the islanding ones.
+    its fraction the joint one); ``outages`` one result per outage: the studied ones in list order, then the skipped ones.
     """
 
     intact: CaseCertificate
@@ -108,7 +112,7 @@ class SecureCertificate:
 
     def counts(self) -> dict[str, int]:
         """Number of outages per status."""
-        out = {"screened": 0, "certified": 0, "islanding": 0, "insecure": 0}
+        out = {"screened": 0, "certified": 0, "islanding": 0, "uncoverable": 0, "insecure": 0}
         for r in self.outages:
             out[r.status] += 1
         return out
@@ -120,13 +124,23 @@ def resolve_outages(net: Network, contingencies: str | Path) -> list[Outage]:
 
 
 def split_islanding(net: Network, outages: Sequence[Outage]) -> tuple[list[Outage], list[OutageResult]]:
-    """(outages to study, results of the islanding ones); generator outages never island."""
+    """(outages to study, results of the skipped ones): branch outages that island part of the grid, and
+    generator outages whose loss leaves less generation capacity than load (with nonnegative branch
+    resistances and shunt conductances the losses are ≥ 0, so no operating point can exist)."""
     keep, skipped = [], []
+    load_mw = float(net.bus[:, BUS_P_LOAD].sum())
+    passive = bool(np.all(net.branch[net.branch_on, BRANCH_R] >= 0) and np.all(net.bus[:, BUS_G_SHUNT] >= 0))
     for o in outages:
         cut = islanded_buses(outage_network(net, o)) if o.kind == "branch" else []
+        left_mw = (float(net.gen[net.gen_on, GEN_P_HIGH].sum() - net.gen[o.row, GEN_P_HIGH])
+                   if o.kind == "gen" else np.inf)
         if cut:
             skipped.append(OutageResult(o.label, o.kind, o.row, "islanding", 0.0, "",
                                         "cuts off bus(es) " + ", ".join(map(str, cut)), 0.0))
+        elif passive and left_mw < load_mw:  # losses ≥ 0: generation must cover at least the load
+            skipped.append(OutageResult(o.label, o.kind, o.row, "uncoverable", 0.0, "",
+                                        f"leaves {left_mw:.1f} MW of generation capacity for {load_mw:.1f} MW of load: "
+                                        "no operating point exists after it, whatever the dispatch", 0.0))
         else:
             keep.append(o)
     if len(net.gen_on) == 1:
@@ -235,7 +249,7 @@ def validate_outages(res: SecureCertificate, samples: int = 50, seed: int = 0, c
     cert = res.intact.certificate
     out: dict[str, ValidationReport] = {}
     for r in res.outages:
-        if r.status in ("islanding", "insecure"):
+        if r.status in ("islanding", "uncoverable", "insecure"):
             continue
         o = Outage(r.kind, r.row, r.label)  # type: ignore[arg-type]
         post_net = outage_network(net, o)
@@ -277,9 +291,10 @@ def print_secure_summary(data: dict) -> None:
         print(f"  cost {s['objective_per_h']:.2f} $/h; plain OPF {s['plain_objective_per_h']:.2f} $/h "
               f"(+{s['cost_increase_per_h']:.2f} $/h); OPF with the margin alone {s['margin_objective_per_h']:.2f} $/h")
     print(f"outages: {sum(c.values())} listed: {c['screened']} screened (cannot bind), {c['certified']} certified "
-          f"in full, {c['islanding']} islanding (skipped), {c['insecure']} insecure (skipped)")
+          f"in full, {c['islanding']} islanding (skipped), {c['uncoverable']} uncoverable (skipped), "
+          f"{c['insecure']} insecure (skipped)")
     for r in sec["outages"]:
-        if r["status"] in ("islanding", "insecure"):
+        if r["status"] in ("islanding", "uncoverable", "insecure"):
             print(f"  {r['status']}: {r['outage']}: {r['detail']}")
     print(f"status: {data['status']}   N-1 certified fraction of the band: {data['certified_fraction']:.4g} "
           f"(intact network alone: {sec['intact_fraction']:.4g})")
