@@ -19,7 +19,7 @@ from .certify import Certificate, CertifyOptions, Objective, certify
 from .errors import NetworkError, OperatingPointError
 from .grid.casefile import read_case
 from .grid.model import OPFResult, find_operating_point
-from .grid.network import BUS_NUMBER, GEN_AT, GEN_P, GEN_Q_LOW, GEN_V_SET, Network
+from .grid.network import BUS_NUMBER, GEN_AT, GEN_P, GEN_Q, GEN_Q_LOW, GEN_V_SET, Network
 from .grid.powerflow import newton_power_flow
 from .grid.system import (Injection, NetworkSystem, OperatingPoint, build_system, largest_load_pq_buses,
                           load_injections, recourse_record, recourse_roles, site_injections, split_q)
@@ -136,7 +136,7 @@ def power_flow_point(net: Network) -> OperatingPoint:
     s_bus = v * np.conj(net.admittance()[0] @ v) + net.load_pu()
     pg = net.gen[on, GEN_P] / net.base_mva
     pg = pg + roles.share * (s_bus[roles.slack].real - sg[roles.slack].real)
-    return OperatingPoint(np.abs(v), np.angle(v), pg, split_q(net, roles, s_bus.imag), None)
+    return OperatingPoint(np.abs(v), np.angle(v), pg, split_q(net, roles, s_bus.imag, net.gen[on, GEN_Q] / net.base_mva), None)
 
 
 def certify_case(case: str | Path | Network, uncertain: str | Sequence[int] = "loads", band: float = 0.05,

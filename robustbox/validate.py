@@ -4,8 +4,8 @@ For box vertices and random points inside, run a Newton power flow (polar,
 :mod:`robustbox.grid.powerflow`) from the operating point with the recourse
 policy as the box file states it (which buses hold |V|, each unit's share of
 the balance) and check every limit on the exact quantities: |V| at every bus,
-every unit's own P range, generator Q per bus (units share it in proportion
-to their Q ranges, so the bus total is in range exactly when each unit is),
+every unit's own P range, every unit's own Q range (the bus's Q split among
+its units by the record's ``q_role`` of each: fixed, held, shares, absorbs),
 branch apparent power |S| ≤ rateA at both ends (the circle, not the polygon
 the certificate uses) and angle differences.  It shares no code with the
 certificate beyond the network data and the policy record; a non-converged
@@ -55,6 +55,7 @@ class Recourse:
     pv: np.ndarray
     pq: np.ndarray
     share: np.ndarray  # per in-service unit (net.gen_on order), sums to 1
+    q_role: tuple[str, ...]  # per in-service unit: "fixed", "held", "shares" or "absorbs"
 
 
 def read_recourse(net: Network, record: dict, source: str = "box file") -> Recourse:
@@ -65,6 +66,7 @@ def read_recourse(net: Network, record: dict, source: str = "box file") -> Recou
         ref = record["angle_reference_bus"]
         holds = [e["bus"] for e in record["voltage_buses"]]
         shares = {int(u["index"]): float(u["balance_share"]) for u in record["units"]}
+        roles = {int(u["index"]): str(u["q_role"]) for u in record["units"]}
     except (KeyError, TypeError, ValueError) as exc:
         raise OperatingPointError(f"{source}: the recourse record is incomplete (missing or bad field: {exc})") from None
     if kind not in ("slack", "distributed"):
@@ -77,6 +79,9 @@ def read_recourse(net: Network, record: dict, source: str = "box file") -> Recou
         raise OperatingPointError(f"{source}: recourse lists no unit for in-service generator rows {missing[:10]} "
                                   "(the box was made for another case or another set of units in service)")
     share = np.array([shares[int(g)] for g in net.gen_on])
+    q_role = tuple(roles[int(g)] for g in net.gen_on)
+    if not set(q_role) <= {"fixed", "held", "shares", "absorbs"}:
+        raise OperatingPointError(f"{source}: a unit's q_role is not one of fixed, held, shares, absorbs")
     if np.any(~np.isfinite(share)) or np.any(share < 0) or abs(share.sum() - 1.0) > 1e-9:
         raise OperatingPointError(f"{source}: the units' balance shares must be ≥ 0 and sum to 1 "
                                   f"(they sum to {share.sum():.12g})")
@@ -87,22 +92,25 @@ def read_recourse(net: Network, record: dict, source: str = "box file") -> Recou
         raise OperatingPointError(f"{source}: the angle reference bus {ref} must hold its voltage")
     held[slack] = False
     return Recourse(kind == "distributed", slack, np.flatnonzero(held),
-                    np.flatnonzero(~held & (np.arange(net.n_bus) != slack)), share)
+                    np.flatnonzero(~held & (np.arange(net.n_bus) != slack)), share, q_role)
 
 
 class _Limits:
     """The network data the limit checks need, computed once per network."""
 
-    def __init__(self, net: Network) -> None:
+    def __init__(self, net: Network, q_role: tuple[str, ...], q_point: np.ndarray) -> None:
         self.net, self.base = net, net.base_mva
         self.lim = net.gen_limits_pu()
         gb = net.gen_bus_idx()
-        self.agg = {}
-        for key in self.lim:
-            arr = np.zeros(net.n_bus)
-            np.add.at(arr, gb, self.lim[key])
-            self.agg[key] = arr
-        self.gen_buses = np.unique(gb)
+        role = np.array(q_role, dtype=object)
+        # per bus with units: (bus, units taking the rest, how, Q of the units that do not)
+        self.q_groups = []
+        for b in np.unique(gb):
+            mine = np.flatnonzero(gb == b)
+            kept = np.where(role[mine] == "fixed", self.lim["qmin"][mine], q_point[mine])
+            takes = np.isin(role[mine], ("shares", "absorbs"))
+            kind = "absorbs" if np.any(role[mine] == "absorbs") else "shares"
+            self.q_groups.append((b, mine[takes], kind, mine[~takes], kept[~takes]))
         self.units = [f"generator row {net.file_row('gen', int(g))} at bus {int(b)}"
                       for g, b in zip(net.gen_on, net.gen[net.gen_on, GEN_AT])]
         _, self.yf, self.yt = net.admittance()
@@ -110,18 +118,35 @@ class _Limits:
         self.br = net.branch[net.branch_on]
         self.rated = self.br[:, BRANCH_LIMIT_A] > 0
 
+    def unit_q(self, q_bus: np.ndarray) -> np.ndarray:
+        """Each unit's Q (pu) from the bus totals by the record's roles."""
+        q = np.zeros(len(self.units))
+        lo, hi = self.lim["qmin"], self.lim["qmax"]
+        for b, takers, kind, others, kept in self.q_groups:
+            q[others] = kept
+            rest = q_bus[b] - kept.sum()
+            if not takers.size:
+                continue
+            if kind == "absorbs":
+                q[takers] = rest  # one absorbing unit per bus
+            else:
+                width = hi[takers] - lo[takers]
+                frac = width / width.sum() if width.sum() > 0 else np.full(len(takers), 1.0 / len(takers))
+                q[takers] = lo[takers] + frac * (rest - lo[takers].sum())
+        return q
+
     def margins(self, v: np.ndarray, sg_bus: np.ndarray, pg_unit: np.ndarray) -> dict[str, tuple[float, str]]:
         """Worst margin and the element that has it, per limit class, at one solved state."""
-        net, base, agg, br = self.net, self.base, self.agg, self.br
+        net, base, br = self.net, self.base, self.br
         out: dict[str, tuple[float, str]] = {}
         vm = np.abs(v)
         mv = np.minimum(net.bus[:, BUS_V_HIGH] - vm, vm - net.bus[:, BUS_V_LOW])
         i = int(np.argmin(mv))
         out["voltage_pu"] = (float(mv[i]), f"bus {int(net.bus[i, BUS_NUMBER])} |V| = {vm[i]:.5f} pu")
-        buses = self.gen_buses
-        mq = np.minimum(agg["qmax"][buses] - sg_bus.imag[buses], sg_bus.imag[buses] - agg["qmin"][buses]) * base
+        qg = self.unit_q(sg_bus.imag)
+        mq = np.minimum(self.lim["qmax"] - qg, qg - self.lim["qmin"]) * base
         i = int(np.argmin(mq))
-        out["gen_q_mvar"] = (float(mq[i]), f"bus {int(net.bus[buses[i], BUS_NUMBER])} Qgen = {sg_bus.imag[buses[i]] * base:.3f} Mvar")
+        out["gen_q_mvar"] = (float(mq[i]), f"{self.units[i]} Qgen = {qg[i] * base:.3f} Mvar")
         mp = np.minimum(self.lim["pmax"] - pg_unit, pg_unit - self.lim["pmin"]) * base
         i = int(np.argmin(mp))
         out["gen_p_mw"] = (float(mp[i]), f"{self.units[i]} Pgen = {pg_unit[i] * base:.3f} MW")
@@ -198,7 +223,7 @@ def evaluate_points(net: Network, op: OperatingPoint, injections: Sequence[Injec
         np.add.at(bus_share, gb, rec.share)
     rows = np.array([index[i.bus] for i in injections], dtype=np.int64)
     is_q = np.array([i.quantity == "q" for i in injections], dtype=bool)
-    limits = _Limits(net)
+    limits = _Limits(net, rec.q_role, op.qg_pu)
     out: list[dict[str, tuple[float, str]] | None] = []
     for k, p in enumerate(np.atleast_2d(points)):
         delta = np.zeros(net.n_bus, dtype=complex)

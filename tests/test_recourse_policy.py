@@ -253,3 +253,24 @@ def test_adversarial_variants_are_certified_and_validated_or_refused_clearly():
             assert rep.passed, (seed, policy, rep.examples)
             certified += 1
     assert certified >= 20, refused  # 24 runs: nearly all variants have room at margin 0.05
+
+
+@pytest.mark.parametrize("policy", ["slack", "distributed"])
+def test_an_unbounded_unit_absorbs_its_bus_q_and_a_narrow_neighbour_is_held(policy):
+    # Found by an outside red team: PYPOWER case9, the bus-2 unit with Q = ±Inf, a second unit at bus 2
+    # with Q ±3 Mvar and a load of 20 + j10 at bus 2.  An equal split of the bus's Q put the narrow unit
+    # at 6.07 Mvar; now the unbounded unit absorbs the bus's Q and the narrow one holds its own.
+    ppc = pypower.case9()
+    ppc["gen"] = ppc["gen"].astype(float)
+    ppc["gen"][1, GEN_Q_LOW], ppc["gen"][1, GEN_Q_HIGH] = -np.inf, np.inf
+    narrow = ppc["gen"][1].copy()
+    narrow[GEN_P], narrow[GEN_P_LOW], narrow[GEN_P_HIGH], narrow[GEN_Q_LOW], narrow[GEN_Q_HIGH] = 20, 5, 40, -3, 3
+    ppc["gen"] = np.vstack([ppc["gen"], narrow])
+    ppc["gencost"] = np.vstack([ppc["gencost"], ppc["gencost"][1]])
+    ppc["bus"][1, BUS_P_LOAD], ppc["bus"][1, BUS_Q_LOAD] = 20.0, 10.0
+    net = _net(ppc, "case9 unbounded and narrow units at bus 2")
+    data = _certified_and_checked(net, "loads", 0.5, policy, samples=200)
+    roles = {u["index"]: u["q_role"] for u in data["recourse"]["units"]}
+    assert roles[1] == "absorbs" and roles[3] == "held"
+    q = next(g["q_mvar"] for g in data["operating_point"]["generators"] if g["index"] == 3)
+    assert -3.0 <= q <= 3.0

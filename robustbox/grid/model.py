@@ -26,6 +26,16 @@ from .network import BRANCH_ANGLE_HIGH, BRANCH_ANGLE_LOW, BUS_NUMBER, BUS_P_LOAD
 from .system import OperatingPoint
 
 
+def _bounds(lo: float, hi: float) -> tuple[float | None, float | None]:
+    """Pyomo bounds: None where the case gives an infinite limit."""
+    return (float(lo) if np.isfinite(lo) else None, float(hi) if np.isfinite(hi) else None)
+
+
+def _middle(lo: float, hi: float) -> float:
+    """A starting value inside [lo, hi]: the midpoint, or 0 moved inside when a side is unbounded."""
+    return float(0.5 * (lo + hi)) if np.isfinite(lo) and np.isfinite(hi) else float(np.clip(0.0, lo, hi))
+
+
 def _row_exprs(qmap: QuadraticMap, x) -> list:
     """Pyomo expressions of every row of a quadratic map over variables x[0..n−1]."""
     terms: list[list] = [[] for _ in range(qmap.n_rows)]
@@ -73,8 +83,8 @@ def build_opf(net: Network, margin: float = 0.0, margin_gen: float | None = None
         m.x[n + i].setlb(-vmax[i]); m.x[n + i].setub(vmax[i])  # noqa: E702
     m.x[s].setlb(0.0)
     m.x[n + s].fix(0.0)
-    m.pg = pyo.Var(m.G, bounds=lambda _, g: (pmin[g], pmax[g]), initialize=lambda _, g: 0.5 * (pmin[g] + pmax[g]))
-    m.qg = pyo.Var(m.G, bounds=lambda _, g: (qmin[g], qmax[g]), initialize=lambda _, g: 0.5 * (qmin[g] + qmax[g]))
+    m.pg = pyo.Var(m.G, bounds=lambda _, g: _bounds(pmin[g], pmax[g]), initialize=lambda _, g: _middle(pmin[g], pmax[g]))
+    m.qg = pyo.Var(m.G, bounds=lambda _, g: _bounds(qmin[g], qmax[g]), initialize=lambda _, g: _middle(qmin[g], qmax[g]))
     inj = _row_exprs(injection_forms(net), m.x)
     gens_at = [[] for _ in range(n)]
     for g, b in enumerate(gb):

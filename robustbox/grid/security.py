@@ -219,7 +219,7 @@ def post_outage_point(net: Network, op: OperatingPoint, out: Network, policy: Po
     s_bus = v * np.conj(ybus @ v) + out.load_pu()
     change = res.alpha_pu if bus_part is not None else s_bus[roles.slack].real - sched[roles.slack].real
     pg = pre.pg_pu + roles.share * change
-    return PostOutagePoint(OperatingPoint(np.abs(v), np.angle(v), pg, split_q(out, roles, s_bus.imag),
+    return PostOutagePoint(OperatingPoint(np.abs(v), np.angle(v), pg, split_q(out, roles, s_bus.imag, pre.qg_pu),
                                           op.objective_per_h), res.mismatch_pu, res.alpha_pu)
 
 

@@ -36,8 +36,8 @@ import scipy.sparse as sp
 from ..errors import NetworkError, OperatingPointError
 from ..quadratic import QuadraticMap, QuadraticSystem, UncertainSet
 from .forms import angle_forms, branch_flow_forms, injection_forms, voltage_forms
-from .network import (BUS_NUMBER, BUS_P_LOAD, BUS_Q_LOAD, BRANCH_LIMIT_A, BUS_V_HIGH, BUS_V_LOW, FIXED_RANGE_MW, GEN_AT,
-                      Network)
+from .network import (BUS_NUMBER, BUS_P_LOAD, BUS_Q_LOAD, BRANCH_LIMIT_A, BUS_V_HIGH, BUS_V_LOW, BUS_KIND, FIXED_RANGE_MW,
+                      GEN_AT, KIND_SLACK, Network)
 
 Policy = Literal["slack", "distributed"]
 
@@ -87,9 +87,12 @@ class Roles:
     generation (sums to 1): P_g = P̄_g + share_g ΔB.  Under "distributed" these are the
     participation factors; under "slack" the slack-bus units with a P range share in proportion
     to it.  Units with a fixed P (range ≤ FIXED_RANGE_MW) never share.
-    ``fixed_q``: per unit, Q range ≤ FIXED_RANGE_MW: it holds Q = Qmin.
-    At a voltage-holding bus the units with a Q range share the bus's remaining Q in proportion to
-    their ranges (:func:`split_q`), so each is in range exactly when the bus total is.
+    ``q_role``: per unit, how its Q follows its bus (:func:`split_q`): "fixed" (Q range ≤
+    FIXED_RANGE_MW: holds Qmin); "shares" (a share of the bus's Q beyond the others' in proportion to
+    its Q range); at a bus where some unit's Q range is unbounded, one such unit "absorbs" the bus's
+    Q and the other units with a range are "held" at their Q of the operating point (clipped into
+    range).  Either way each unit is inside its own range exactly when its bus total is inside the
+    total of the units' ranges (held units counted at their held value).
     """
 
     policy: Policy
@@ -98,7 +101,11 @@ class Roles:
     pq: np.ndarray
     share: np.ndarray
     fixed_p: np.ndarray
-    fixed_q: np.ndarray
+    q_role: np.ndarray
+
+    @property
+    def fixed_q(self) -> np.ndarray:
+        return self.q_role == "fixed"
 
     @property
     def voltage_buses(self) -> np.ndarray:
@@ -114,15 +121,14 @@ def recourse_record(net: Network, roles: Roles, op: OperatingPoint) -> dict:
     for k, row in enumerate(net.gen_on):
         p_rule = ("fixed P (Pmin = Pmax)" if roles.fixed_p[k] else
                   "shares the balance" if roles.share[k] > 0 else "holds its P")
-        q_rule = "fixed Q (Qmin = Qmax)" if roles.fixed_q[k] else "shares its bus's Q in proportion to its Q range"
         units.append({"index": int(row), "bus": int(number[gb[k]]), "balance_share": float(roles.share[k]),
-                      "p_rule": p_rule, "q_rule": q_rule})
+                      "p_rule": p_rule, "q_role": str(roles.q_role[k]), "q_rule": Q_RULES[str(roles.q_role[k])]})
     pq_with_units = sorted(set(gb[roles.fixed_q].tolist()) & set(roles.pq.tolist()))
     return {
         "policy": roles.policy,
         "angle_reference_bus": int(number[roles.slack]),
         "voltage_buses": [{"bus": int(number[b]), "vm_pu": float(op.vm_pu[b]),
-                           "why": "slack bus" if b == roles.slack else "a unit with a reactive range holds it"}
+                           "why": _why_voltage(net, roles, b)}
                           for b in roles.voltage_buses],
         "pq_buses_with_units": [{"bus": int(number[b]), "why": "every unit here has Qmin = Qmax: the bus holds "
                                  "its Q, not its voltage"} for b in pq_with_units],
@@ -131,6 +137,14 @@ def recourse_record(net: Network, roles: Roles, op: OperatingPoint) -> dict:
                  "slack bus's units share, under 'distributed' all sharing units; at a voltage bus the units "
                  "without a fixed Q share the bus's Q beyond their Qmin in proportion to Qmax − Qmin"),
     }
+
+
+def _why_voltage(net: Network, roles: Roles, b: int) -> str:
+    if b != roles.slack:
+        return "a unit with a reactive range holds it"
+    if net.bus[b, BUS_KIND] == KIND_SLACK:
+        return "slack bus"
+    return "slack bus (the case's type-3 bus has no unit in service: the first bus with one takes its place)"
 
 
 def _proportional(weight: np.ndarray) -> np.ndarray:
@@ -168,29 +182,57 @@ def recourse_roles(net: Network, policy: Policy = "slack", participation: np.nda
         if not weight.sum() > 0:
             raise NetworkError(f"{net.source}: no unit at the slack bus {int(net.bus[s, BUS_NUMBER])} has a P range, "
                                "so it cannot absorb the balance; use the distributed policy or another slack bus")
-    return Roles(policy, s, pv, pq, _proportional(weight), fixed_p, fixed_q)
+    q_role = np.where(fixed_q, "fixed", "shares").astype(object)
+    q_width = lim["qmax"] - lim["qmin"]
+    for b in np.unique(gb):
+        free = np.flatnonzero((gb == b) & ~fixed_q)
+        unbounded = free[~np.isfinite(q_width[free])]
+        if unbounded.size:  # one unbounded unit takes the bus's Q; the others hold theirs
+            q_role[free] = "held"
+            both = unbounded[np.isinf(lim["qmin"][unbounded]) & np.isinf(lim["qmax"][unbounded])]
+            q_role[both[0] if both.size else unbounded[0]] = "absorbs"
+    return Roles(policy, s, pv, pq, _proportional(weight), fixed_p, q_role.astype(str))
 
 
-def split_q(net: Network, roles: Roles, q_bus: np.ndarray) -> np.ndarray:
+Q_RULES = {"fixed": "fixed Q (Qmin = Qmax)",
+           "shares": "shares its bus's Q beyond the others' Qmin in proportion to its Q range",
+           "held": "holds its Q of the operating point (an unbounded unit at its bus absorbs the bus's Q)",
+           "absorbs": "absorbs its bus's Q beyond the other units' (its Q range is unbounded)"}
+
+
+def split_q(net: Network, roles: Roles, q_bus: np.ndarray, q_unit: np.ndarray) -> np.ndarray:
     """Per-unit Q (pu) from bus totals ``q_bus`` (pu, per bus index) by the rule of :class:`Roles`.
 
-    Fixed-Q units hold Qmin; the others take Qmin plus a share of the rest in proportion to their
-    Q ranges (equal shares when a range is unbounded).
+    ``q_unit`` (pu, per unit) gives the value a "held" unit keeps (clipped into its range).
     """
     lim = net.gen_limits_pu()
     gb = net.gen_bus_idx()
-    qg = np.where(roles.fixed_q, lim["qmin"], 0.0)
+    role = roles.q_role
+    qg = np.where(role == "fixed", lim["qmin"], 0.0)
+    held = role == "held"
+    qg[held] = np.clip(q_unit[held], lim["qmin"][held], lim["qmax"][held])
     for b in np.unique(gb):
-        free = np.flatnonzero((gb == b) & ~roles.fixed_q)
-        if not free.size:
+        at = gb == b
+        taker = np.flatnonzero(at & np.isin(role, ("shares", "absorbs")))
+        if not taker.size:
             continue
-        rest = q_bus[b] - qg[gb == b].sum()
-        qmin, width = lim["qmin"][free], lim["qmax"][free] - lim["qmin"][free]
-        if np.all(np.isfinite(width)):
-            qg[free] = qmin + (rest - qmin.sum()) * _proportional(width)
+        rest = q_bus[b] - qg[at & ~np.isin(role, ("shares", "absorbs"))].sum()
+        if role[taker[0]] == "absorbs":
+            qg[taker[0]] = rest
         else:
-            qg[free] = rest / free.size
+            qmin, width = lim["qmin"][taker], lim["qmax"][taker] - lim["qmin"][taker]
+            qg[taker] = qmin + (rest - qmin.sum()) * _proportional(width)
     return qg
+
+
+def q_bounds_per_bus(net: Network, roles: Roles, q_unit: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(lowest, highest) total Q per bus index (pu) that keeps every unit there inside its own range
+    under the rule of :class:`Roles`; held units count at their held value ``q_unit``."""
+    lim = net.gen_limits_pu()
+    held = roles.q_role == "held"
+    lo = np.where(held, np.clip(q_unit, lim["qmin"], lim["qmax"]), lim["qmin"])
+    hi = np.where(held, lo, lim["qmax"])
+    return _per_bus_sum(net, lo), _per_bus_sum(net, hi)
 
 
 def _unit(net: Network, k: int) -> str:
@@ -226,6 +268,11 @@ def held_point(net: Network, roles: Roles, op: OperatingPoint) -> OperatingPoint
     pg = checked(op.pg_pu, lim["pmin"], lim["pmax"], lambda k: (
         f"the operating point violates a generator limit: {_unit(net, k)} produces "
         f"{op.pg_pu[k] * base:.6g} MW, outside [{lim['pmin'][k] * base:.6g}, {lim['pmax'][k] * base:.6g}] MW"))
+    held = np.flatnonzero(roles.q_role == "held")
+    checked(op.qg_pu[held], lim["qmin"][held], lim["qmax"][held], lambda i: (
+        f"the operating point violates a generator limit: {_unit(net, int(held[i]))} produces "
+        f"{op.qg_pu[held[i]] * base:.6g} Mvar, outside [{lim['qmin'][held[i]] * base:.6g}, "
+        f"{lim['qmax'][held[i]] * base:.6g}] Mvar"))
     q_bus = np.zeros(net.n_bus)
     np.add.at(q_bus, net.gen_bus_idx(), op.qg_pu)
     fq = np.flatnonzero(roles.fixed_q)
@@ -240,7 +287,7 @@ def held_point(net: Network, roles: Roles, op: OperatingPoint) -> OperatingPoint
                 f"have a fixed Q (Qmin = Qmax) of {held * base:.6g} Mvar in total, the point gives "
                 f"{q_bus[b] * base:.6g} Mvar")
         q_bus[b] = held
-    return OperatingPoint(vm, op.va_rad, pg, split_q(net, roles, q_bus), op.objective_per_h)
+    return OperatingPoint(vm, op.va_rad, pg, split_q(net, roles, q_bus, op.qg_pu), op.objective_per_h)
 
 
 @dataclass(frozen=True, eq=False)
@@ -318,7 +365,7 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     target = np.concatenate([pg_bus[p_buses] - load.real[p_buses], qg_bus[pq] - load.imag[pq], op.vm_pu[pv] ** 2])
     # ------------------------------------------------------------ limits
     gen_bus = np.union1d(pv, [s])  # buses whose generators' Q follows the voltage set-point
-    qmin_b, qmax_b = _per_bus_sum(net, lim["qmin"]), _per_bus_sum(net, lim["qmax"])
+    qmin_b, qmax_b = q_bounds_per_bus(net, roles, op.qg_pu)
     sharing = np.flatnonzero(roles.share > 0)
     if dist:  # every sharing unit's own range: P_g = P̄_g + share_g α, a row linear in α
         p_rows = QuadraticMap.from_terms(2 * n, [f"Pgen[{_unit(net, int(k))}]" for k in sharing],
