@@ -274,3 +274,17 @@ def test_an_unbounded_unit_absorbs_its_bus_q_and_a_narrow_neighbour_is_held(poli
     assert roles[1] == "absorbs" and roles[3] == "held"
     q = next(g["q_mvar"] for g in data["operating_point"]["generators"] if g["index"] == 3)
     assert -3.0 <= q <= 3.0
+
+
+def test_a_slack_bus_whose_unit_has_fixed_q_hands_the_reference_on():
+    # PYPOWER case9 with the slack unit's Q fixed at 20 Mvar (hand edit; PGLib case1888_rte has such a
+    # slack bus): it cannot hold its voltage, so the first bus with a reactive range becomes the slack.
+    ppc = pypower.case9()
+    ppc["gen"] = ppc["gen"].astype(float)
+    ppc["gen"][0, GEN_Q_LOW] = ppc["gen"][0, GEN_Q_HIGH] = 20.0
+    net = _net(ppc, "case9 fixed-Q slack unit")
+    data = _certified_and_checked(net, "loads", 0.1, "distributed")
+    first = data["recourse"]["voltage_buses"][0]
+    assert first["bus"] == 2 and "type-3 bus has no unit in service with a reactive range" in first["why"]
+    assert data["recourse"]["pq_buses_with_units"] == [{"bus": 1, "why": "every unit here has Qmin = Qmax: the "
+                                                        "bus holds its Q, not its voltage"}]

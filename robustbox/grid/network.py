@@ -369,11 +369,20 @@ class Network:
 
     @property
     def slack(self) -> int:
-        """Index of the slack bus: the type-3 bus, or, when it has no generator in
-        service, the first bus with one (MATPOWER's convention in ``bustypes``)."""
+        """Index of the slack bus: the type-3 bus if one of its in-service units has a reactive range
+        (it must hold the voltage and take up Q); else the first bus with such a unit; else the type-3
+        bus if it has any unit in service, else the first bus with one (MATPOWER's convention in
+        ``bustypes``, from memory, for a type-3 bus without a generator)."""
         ref = int(np.flatnonzero(self.bus[:, BUS_KIND] == KIND_SLACK)[0])
         gens = self.gen_bus_idx()
-        return ref if ref in set(gens.tolist()) else int(np.sort(gens)[0])
+        on = self.gen_on
+        reactive = gens[self.gen[on, GEN_Q_HIGH] - self.gen[on, GEN_Q_LOW] > FIXED_RANGE_MW]
+        for candidates in (reactive, gens):
+            if ref in set(candidates.tolist()):
+                return ref
+            if candidates.size:
+                return int(np.sort(candidates)[0])
+        return ref
 
     def bus_kinds(self, reactive_range: bool = True) -> tuple[int, np.ndarray, np.ndarray]:
         """(slack, PV buses, PQ buses) by index.

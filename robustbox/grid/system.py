@@ -144,7 +144,8 @@ def _why_voltage(net: Network, roles: Roles, b: int) -> str:
         return "a unit with a reactive range holds it"
     if net.bus[b, BUS_KIND] == KIND_SLACK:
         return "slack bus"
-    return "slack bus (the case's type-3 bus has no unit in service: the first bus with one takes its place)"
+    return ("slack bus (the case's type-3 bus has no unit in service with a reactive range: the first bus "
+            "with one takes its place)")
 
 
 def _proportional(weight: np.ndarray) -> np.ndarray:
