@@ -249,7 +249,7 @@ def _operating_point(net: Network, settings: EnvelopeSettings, start: OperatingP
     return power_flow_point(work)
 
 
-_STATE = ("vm_pu", "va_rad", "pg_pu", "qg_pu")  # the exact point (JSON floats round-trip), for warm starts
+_STATE = ("v_mag_pu", "v_ang_rad", "pg_pu", "qg_pu")  # the exact point (JSON floats round-trip), for warm starts
 
 
 def _exact_point(record: dict) -> OperatingPoint:

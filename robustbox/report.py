@@ -113,7 +113,7 @@ def network_figure(res: CaseCertificate, path: Path, condition: str = "") -> Pat
     graph.add_nodes_from(range(net.n_bus))
     graph.add_edges_from(zip(f.tolist(), t.tolist()))
     pos = nx.kamada_kawai_layout(graph) if net.n_bus <= 400 else nx.spring_layout(graph, seed=1)
-    margin = np.minimum(net.bus[:, BUS_V_HIGH] - op.vm_pu, op.vm_pu - net.bus[:, BUS_V_LOW])
+    margin = np.minimum(net.bus[:, BUS_V_HIGH] - op.v_mag_pu, op.v_mag_pu - net.bus[:, BUS_V_LOW])
     big = net.n_bus > 300
     fig, ax = plt.subplots(figsize=(7.5, 6.2))
     nx.draw_networkx_edges(graph, pos, ax=ax, edge_color="#bbbbbb", width=0.4 if big else 1.0)

@@ -68,10 +68,10 @@ def point_to_json(net: Network, op: OperatingPoint) -> dict:
     on = net.gen_on
     return {
         "cost_per_h": op.objective_per_h,
-        "generators": [{"bus": int(net.gen[g, GEN_AT]), "index": int(g), "p_mw": float(op.pg_pu[k] * net.base_mva),
-                        "q_mvar": float(op.qg_pu[k] * net.base_mva), "vm_pu": float(op.vm_pu[net.bus_index[net.gen[g, GEN_AT]]])}
+        "generators": [{"bus": int(net.gen[g, GEN_AT]), "index": int(g), "output_mw": float(op.pg_pu[k] * net.base_mva),
+                        "output_mvar": float(op.qg_pu[k] * net.base_mva), "voltage_pu": float(op.v_mag_pu[net.bus_index[net.gen[g, GEN_AT]]])}
                        for k, g in enumerate(on)],
-        "buses": [{"bus": int(b), "vm_pu": float(op.vm_pu[i]), "va_deg": float(np.degrees(op.va_rad[i]))}
+        "buses": [{"bus": int(b), "voltage_pu": float(op.v_mag_pu[i]), "angle_deg": float(np.degrees(op.v_ang_rad[i]))}
                   for i, b in enumerate(net.bus[:, BUS_NUMBER])],
     }
 
@@ -81,35 +81,35 @@ def point_from_json(net: Network, data: dict, source: str = "point file") -> Ope
     try:
         gens = {int(g["index"]): g for g in data["generators"]}
     except (KeyError, TypeError, ValueError):
-        raise OperatingPointError(f"{source}: needs \"generators\": [{{\"index\": ..., \"p_mw\": ..., \"vm_pu\": ...}}]") from None
+        raise OperatingPointError(f"{source}: needs \"generators\": [{{\"index\": ..., \"output_mw\": ..., \"voltage_pu\": ...}}]") from None
     on = net.gen_on
     missing = [int(g) for g in on if int(g) not in gens]
     if missing:
         raise OperatingPointError(f"{source}: no entry for in-service generator rows {missing[:10]}")
     try:
-        pg = np.array([float(gens[int(g)]["p_mw"]) for g in on]) / net.base_mva
+        pg = np.array([float(gens[int(g)]["output_mw"]) for g in on]) / net.base_mva
     except (KeyError, TypeError, ValueError) as exc:
-        raise OperatingPointError(f"{source}: a generator's p_mw is missing or not a number ({exc!r})") from None
-    if "buses" in data and all("q_mvar" in gens[int(g)] for g in on):
+        raise OperatingPointError(f"{source}: a generator's output_mw is missing or not a number ({exc!r})") from None
+    if "buses" in data and all("output_mvar" in gens[int(g)] for g in on):
         idx = net.bus_index
         vm, va = np.zeros(net.n_bus), np.zeros(net.n_bus)
         try:
             for k, b in enumerate(data["buses"]):
                 if b["bus"] not in idx:
                     raise OperatingPointError(f"{source}: bus {b['bus']} is not in the network")
-                vm[idx[b["bus"]]], va[idx[b["bus"]]] = float(b["vm_pu"]), np.radians(float(b["va_deg"]))
-            qg = np.array([float(gens[int(g)]["q_mvar"]) for g in on]) / net.base_mva
+                vm[idx[b["bus"]]], va[idx[b["bus"]]] = float(b["voltage_pu"]), np.radians(float(b["angle_deg"]))
+            qg = np.array([float(gens[int(g)]["output_mvar"]) for g in on]) / net.base_mva
         except (KeyError, TypeError, ValueError) as exc:
-            raise OperatingPointError(f"{source}: bus entry {k} or a generator's q_mvar is missing or not a number "
-                                      f"({exc!r}); each bus needs \"bus\", \"vm_pu\", \"va_deg\"") from None
+            raise OperatingPointError(f"{source}: bus entry {k} or a generator's output_mvar is missing or not a number "
+                                      f"({exc!r}); each bus needs \"bus\", \"voltage_pu\", \"angle_deg\"") from None
         return OperatingPoint(vm, va, pg, qg, data.get("cost_per_h"))
     work = net.copy()
     for k, g in enumerate(on):
         work.gen[g, GEN_P] = pg[k] * net.base_mva
         try:
-            work.gen[g, GEN_V_SET] = float(gens[int(g)]["vm_pu"])
+            work.gen[g, GEN_V_SET] = float(gens[int(g)]["voltage_pu"])
         except (KeyError, TypeError, ValueError):
-            raise OperatingPointError(f"{source}: generator row {int(g)} needs a numeric \"vm_pu\"") from None
+            raise OperatingPointError(f"{source}: generator row {int(g)} needs a numeric \"voltage_pu\"") from None
     return power_flow_point(work)
 
 

@@ -53,7 +53,7 @@ def test_opf_command_writes_point(tmp_path):
     out = tmp_path / "point.json"
     assert main(["opf", str(demo_case_path()), "--margin", "0.1", "--out", str(out)]) == 0
     data = json.loads(out.read_text())
-    assert data["cost_per_h"] > 0 and {"bus", "index", "p_mw", "vm_pu"} <= set(data["generators"][0])
+    assert data["cost_per_h"] > 0 and {"bus", "index", "output_mw", "voltage_pu"} <= set(data["generators"][0])
     box = tmp_path / "box.json"
     assert main(["certify", str(demo_case_path()), "--point", str(out), "--uncertain", "9,17", "--band", "0.2",
                  "--out", str(box)]) == 0
@@ -88,11 +88,11 @@ def test_report_slice_for_chosen_injections(tmp_path):
 
 def test_bad_point_file_is_one_line(tmp_path, capsys):
     point = tmp_path / "point.json"
-    gens = [{"index": g, "p_mw": 1.0, "q_mvar": 0.0, "vm_pu": 1.0} for g in range(4)]  # the demo grid's 4 units
+    gens = [{"index": g, "output_mw": 1.0, "output_mvar": 0.0, "voltage_pu": 1.0} for g in range(4)]  # the demo grid's 4 units
     point.write_text(json.dumps({"generators": gens, "buses": [{"bus": 1}]}))
     code = main(["certify", str(demo_case_path()), "--point", str(point)])
     err = capsys.readouterr().err.strip()
-    assert code == 2 and "point.json" in err and "vm_pu" in err and len(err.splitlines()) == 1
+    assert code == 2 and "point.json" in err and "voltage_pu" in err and len(err.splitlines()) == 1
 
 
 def test_bad_input_is_refused_in_one_line_before_any_computation(tmp_path, capsys):

@@ -62,8 +62,8 @@ def test_post_outage_flows_match_pypower():
     assert ok
     # columns 8 and 9 of PYPOWER's bus table are |V| (pu) and the angle (degrees), MATPOWER v2 layout;
     # tolerances: common practice, no source (both Newton runs converge to 1e-12 pu mismatch)
-    assert np.allclose(post.vm_pu, res["bus"][:, 7], atol=1e-7)
-    assert np.allclose(np.degrees(post.va_rad - post.va_rad[0]), res["bus"][:, 8] - res["bus"][0, 8], atol=1e-6)
+    assert np.allclose(post.v_mag_pu, res["bus"][:, 7], atol=1e-7)
+    assert np.allclose(np.degrees(post.v_ang_rad - post.v_ang_rad[0]), res["bus"][:, 8] - res["bus"][0, 8], atol=1e-6)
 
 
 def _validated(res, samples: int = 50):

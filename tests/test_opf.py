@@ -50,7 +50,7 @@ def test_margin_opf_reports_price_of_security_and_keeps_room():
     net = read_case(pglib_case("pglib_opf_case14_ieee"))
     res = solve_opf(net, margin=0.1)
     assert res.cost_increase_per_h is not None and res.cost_increase_per_h >= -1e-6
-    vm = res.point.vm_pu
+    vm = res.point.v_mag_pu
     width = net.bus[:, 11] - net.bus[:, 12]
     # the tightened band of the margin definition; 1e-6 pu is Ipopt's tolerance (common practice, no source)
     assert np.all(vm <= net.bus[:, 11] - 0.1 * width + 1e-6) and np.all(vm >= net.bus[:, 12] + 0.1 * width - 1e-6)

@@ -90,15 +90,15 @@ def _point_with(net: Network, **edits) -> dict:
     point = point_to_json(net, res.nsys.operating_point)
     point.pop("buses")
     for g in point["generators"]:
-        g.pop("q_mvar")
+        g.pop("output_mvar")
         g.update(edits.get(g["index"], {}))
     return point
 
 
 @pytest.mark.parametrize("row, edit, message", [
-    (1, {"vm_pu": 1.105}, r"bus 2 holds \|V\| = 1\.105 pu, outside \[0\.9, 1\.1\] pu"),   # a PV bus (Vmax 1.1)
-    (0, {"vm_pu": 1.104}, r"bus 1 holds \|V\| = 1\.104 pu, outside \[0\.9, 1\.1\] pu"),   # the slack bus
-    (2, {"p_mw": 94.19}, r"generator row 3 at bus 3 produces 94\.19 MW, outside \[10, 90\] MW"),
+    (1, {"voltage_pu": 1.105}, r"bus 2 holds \|V\| = 1\.105 pu, outside \[0\.9, 1\.1\] pu"),   # a PV bus (Vmax 1.1)
+    (0, {"voltage_pu": 1.104}, r"bus 1 holds \|V\| = 1\.104 pu, outside \[0\.9, 1\.1\] pu"),   # the slack bus
+    (2, {"output_mw": 94.19}, r"generator row 3 at bus 3 produces 94\.19 MW, outside \[10, 90\] MW"),
 ])
 def test_a_given_point_with_a_held_quantity_outside_its_limit_is_refused(row, edit, message):
     ppc = pypower.case9()  # PYPOWER case9: Vmax 1.1 pu at every bus
@@ -115,9 +115,9 @@ def test_a_held_quantity_a_rounding_error_outside_is_on_its_limit():
     # reference, from memory) is read as on the limit; the box is certified and checks out.
     net = _net(pypower.case9(), "case9")
     point = _point_with(net)
-    point["generators"][1]["vm_pu"] = float(net.bus[1, BUS_V_HIGH]) + 1e-9
+    point["generators"][1]["voltage_pu"] = float(net.bus[1, BUS_V_HIGH]) + 1e-9
     data = _certified_and_checked(net, "loads", 0.05, "slack", point=point)
-    held = {e["bus"]: e["vm_pu"] for e in data["recourse"]["voltage_buses"]}
+    held = {e["bus"]: e["voltage_pu"] for e in data["recourse"]["voltage_buses"]}
     assert held[2] == float(net.bus[1, BUS_V_HIGH])
 
 
@@ -132,7 +132,7 @@ def test_a_unit_with_fixed_q_makes_its_bus_pq_and_the_box_file_says_so():
         assert [e["bus"] for e in rec["pq_buses_with_units"]] == [2]
         unit = next(u for u in rec["units"] if u["index"] == 1)
         assert unit["q_rule"] == "fixed Q (Qmin = Qmax)"
-        q = next(g["q_mvar"] for g in data["operating_point"]["generators"] if g["index"] == 1)
+        q = next(g["output_mvar"] for g in data["operating_point"]["generators"] if g["index"] == 1)
         assert q == pytest.approx(10.0, abs=1e-9)
 
 
@@ -151,7 +151,7 @@ def test_a_unit_with_fixed_p_takes_no_share_and_holds_its_p(p_low, p_high):
     data = _certified_and_checked(net, "loads", 0.1, "distributed")
     fixed = next(u for u in data["recourse"]["units"] if u["index"] == 3)
     assert fixed["balance_share"] == 0.0 and fixed["p_rule"] == "fixed P (Pmin = Pmax)"
-    p = next(g["p_mw"] for g in data["operating_point"]["generators"] if g["index"] == 3)
+    p = next(g["output_mw"] for g in data["operating_point"]["generators"] if g["index"] == 3)
     assert p_low <= p <= p_high
 
 
@@ -272,7 +272,7 @@ def test_an_unbounded_unit_absorbs_its_bus_q_and_a_narrow_neighbour_is_held(poli
     data = _certified_and_checked(net, "loads", 0.5, policy, samples=200)
     roles = {u["index"]: u["q_role"] for u in data["recourse"]["units"]}
     assert roles[1] == "absorbs" and roles[3] == "held"
-    q = next(g["q_mvar"] for g in data["operating_point"]["generators"] if g["index"] == 3)
+    q = next(g["output_mvar"] for g in data["operating_point"]["generators"] if g["index"] == 3)
     assert -3.0 <= q <= 3.0
 
 

@@ -258,7 +258,7 @@ def limits_without_room(net: Network, op: OperatingPoint, rel: float = 1e-4, cou
     """Limits at (within ``rel`` of the range from) their bounds at ``op``, in engineering units, tightest first."""
     base = net.base_mva
     out: list[tuple[float, str]] = []
-    vm = op.vm_pu
+    vm = op.v_mag_pu
     lo, hi = net.bus[:, BUS_V_LOW], net.bus[:, BUS_V_HIGH]
     width = np.maximum(hi - lo, 1e-9)
     for i in range(net.n_bus):

@@ -371,8 +371,8 @@ class Network:
     def slack(self) -> int:
         """Index of the slack bus: the type-3 bus if one of its in-service units has a reactive range
         (it must hold the voltage and take up Q); else the first bus with such a unit; else the type-3
-        bus if it has any unit in service, else the first bus with one (MATPOWER's convention in
-        ``bustypes``, from memory, for a type-3 bus without a generator)."""
+        bus if it has any unit in service, else the first bus with one (the usual reading of the case
+        format for a type-3 bus without a generator, from memory)."""
         ref = int(np.flatnonzero(self.bus[:, BUS_KIND] == KIND_SLACK)[0])
         gens = self.gen_bus_idx()
         on = self.gen_on
@@ -389,7 +389,7 @@ class Network:
 
         A bus is PV when it has an in-service generator that can vary its reactive power
         (Qmax − Qmin > FIXED_RANGE_MW); a generator with Qmin = Qmax cannot hold a voltage, so its bus is PQ with
-        that fixed Q.  ``reactive_range=False`` gives MATPOWER's rule (any in-service generator).
+        that fixed Q.  ``reactive_range=False`` gives the case format's usual reading (any in-service generator).
         """
         has_gen = np.zeros(self.n_bus, dtype=bool)
         on = self.gen_on

@@ -111,7 +111,7 @@ def newton_power_flow(ybus: sp.csr_matrix, s_sched: np.ndarray, v0: np.ndarray, 
 
 
 def case_power_flow(net: Network, tol: float = 1e-10) -> PowerFlowResult:
-    """Power flow with the case's own set-points (gen Pg/Qg, Vg; loads Pd/Qd), like MATPOWER's runpf
+    """Power flow with the case's own set-points (gen Pg/Qg, Vg; loads Pd/Qd), read as the case format documents it
     (its bus types: every bus with an in-service generator is PV)."""
     ybus = net.admittance()[0]
     s, pv, pq = net.bus_kinds(reactive_range=False)

@@ -184,7 +184,7 @@ def default_participation(net: Network) -> np.ndarray:
 def carried_point(net: Network, op: OperatingPoint, out: Network) -> OperatingPoint:
     """The pre-outage point with the outputs of the generators still in service in ``out``."""
     keep = np.isin(net.gen_on, out.gen_on)
-    return OperatingPoint(op.vm_pu, op.va_rad, op.pg_pu[keep], op.qg_pu[keep], op.objective_per_h)
+    return OperatingPoint(op.v_mag_pu, op.v_ang_rad, op.pg_pu[keep], op.qg_pu[keep], op.objective_per_h)
 
 
 @dataclass(frozen=True)
@@ -324,7 +324,7 @@ def _scopf_model(net: Network, outages: Sequence[Outage], policy: Policy, margin
 
 
 def _warm(model: pyo.Block, net: Network, op: OperatingPoint) -> None:
-    v = op.voltage * np.exp(-1j * op.va_rad[net.slack])
+    v = op.voltage * np.exp(-1j * op.v_ang_rad[net.slack])
     n = net.n_bus
     for i in range(2 * n):
         var = model.x[i]

@@ -46,15 +46,15 @@ Policy = Literal["slack", "distributed"]
 class OperatingPoint:
     """A full AC state: voltages at every bus, outputs of in-service generators (per unit)."""
 
-    vm_pu: np.ndarray
-    va_rad: np.ndarray
+    v_mag_pu: np.ndarray
+    v_ang_rad: np.ndarray
     pg_pu: np.ndarray
     qg_pu: np.ndarray
     objective_per_h: float | None = None
 
     @property
     def voltage(self) -> np.ndarray:
-        return self.vm_pu * np.exp(1j * self.va_rad)
+        return self.v_mag_pu * np.exp(1j * self.v_ang_rad)
 
 
 @dataclass(frozen=True)
@@ -127,7 +127,7 @@ def recourse_record(net: Network, roles: Roles, op: OperatingPoint) -> dict:
     return {
         "policy": roles.policy,
         "angle_reference_bus": int(number[roles.slack]),
-        "voltage_buses": [{"bus": int(number[b]), "vm_pu": float(op.vm_pu[b]),
+        "voltage_buses": [{"bus": int(number[b]), "voltage_pu": float(op.v_mag_pu[b]),
                            "why": _why_voltage(net, roles, b)}
                           for b in roles.voltage_buses],
         "pq_buses_with_units": [{"bus": int(number[b]), "why": "every unit here has Qmin = Qmax: the bus holds "
@@ -261,10 +261,10 @@ def held_point(net: Network, roles: Roles, op: OperatingPoint) -> OperatingPoint
     base = net.base_mva
     vb = roles.voltage_buses
     vmin, vmax = net.bus[vb, BUS_V_LOW], net.bus[vb, BUS_V_HIGH]
-    vm = op.vm_pu.copy()
-    vm[vb] = checked(op.vm_pu[vb], vmin, vmax, lambda i: (
+    vm = op.v_mag_pu.copy()
+    vm[vb] = checked(op.v_mag_pu[vb], vmin, vmax, lambda i: (
         f"the operating point violates a voltage limit: bus {int(net.bus[vb[i], BUS_NUMBER])} holds "
-        f"|V| = {op.vm_pu[vb[i]]:.6g} pu, outside [{vmin[i]:.6g}, {vmax[i]:.6g}] pu"))
+        f"|V| = {op.v_mag_pu[vb[i]]:.6g} pu, outside [{vmin[i]:.6g}, {vmax[i]:.6g}] pu"))
     lim = net.gen_limits_pu()
     pg = checked(op.pg_pu, lim["pmin"], lim["pmax"], lambda k: (
         f"the operating point violates a generator limit: {_unit(net, k)} produces "
@@ -288,7 +288,7 @@ def held_point(net: Network, roles: Roles, op: OperatingPoint) -> OperatingPoint
                 f"have a fixed Q (Qmin = Qmax) of {held * base:.6g} Mvar in total, the point gives "
                 f"{q_bus[b] * base:.6g} Mvar")
         q_bus[b] = held
-    return OperatingPoint(vm, op.va_rad, pg, split_q(net, roles, q_bus, op.qg_pu), op.objective_per_h)
+    return OperatingPoint(vm, op.v_ang_rad, pg, split_q(net, roles, q_bus, op.qg_pu), op.objective_per_h)
 
 
 @dataclass(frozen=True, eq=False)
@@ -334,11 +334,11 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     s, pv, pq = roles.slack, roles.pv, roles.pq
     index = net.bus_index
     gen_on = net.gen_on
-    if len(op.vm_pu) != n or len(op.pg_pu) != len(gen_on):
-        raise NetworkError(f"operating point has {len(op.vm_pu)} bus voltages and {len(op.pg_pu)} generator outputs; "
+    if len(op.v_mag_pu) != n or len(op.pg_pu) != len(gen_on):
+        raise NetworkError(f"operating point has {len(op.v_mag_pu)} bus voltages and {len(op.pg_pu)} generator outputs; "
                            f"the network has {n} buses and {len(gen_on)} generators in service")
     op = held_point(net, roles, op)
-    volt = op.voltage * np.exp(-1j * op.va_rad[s])  # slack angle 0
+    volt = op.voltage * np.exp(-1j * op.v_ang_rad[s])  # slack angle 0
     x_full = np.concatenate([volt.real, volt.imag])
     free = np.ones(2 * n, dtype=bool)
     free[[s, n + s]] = False
@@ -363,7 +363,7 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     vol = voltage_forms(net)
     eq_map = QuadraticMap.stack([eq_map, vol.take(pv).substitute(new_index, x_full, n_vars)])
     # a PQ bus may carry generators with a fixed reactive output (Qmin = Qmax)
-    target = np.concatenate([pg_bus[p_buses] - load.real[p_buses], qg_bus[pq] - load.imag[pq], op.vm_pu[pv] ** 2])
+    target = np.concatenate([pg_bus[p_buses] - load.real[p_buses], qg_bus[pq] - load.imag[pq], op.v_mag_pu[pv] ** 2])
     # ------------------------------------------------------------ limits
     gen_bus = np.union1d(pv, [s])  # buses whose generators' Q follows the voltage set-point
     qmin_b, qmax_b = q_bounds_per_bus(net, roles, op.qg_pu)
