@@ -845,6 +845,12 @@ def certify(system: QuadraticSystem, point: np.ndarray, objective: Objective = "
                                   f"{options.residual_tolerance:g}")
     h = system.limits.evaluate(point)
     excess = np.maximum(h - system.limit_upper, system.limit_lower - h)
+    flat = np.flatnonzero((system.limit_upper - system.limit_lower <= 0) & (excess <= 1e-9 * (1.0 + np.abs(h))))
+    if flat.size:  # a limit with no width: the quantity cannot move at all
+        names = ", ".join(f"'{system.limits.names[t]}' (lower = upper = {system.limit_upper[t]:.9g})" for t in flat[:5])
+        raise CertificateError(f"limits with no width on quantities that move with the injections: {names}; "
+                               "no box wider than a point can be certified (widen the limit, or hold the quantity "
+                               "by the policy)")
     viol = [f"'{system.limits.names[t]}' = {h[t]:.9g} outside [{system.limit_lower[t]:.9g}, {system.limit_upper[t]:.9g}]"
             f" by {excess[t]:.3g}" for t in np.flatnonzero(excess > 0)]
     if system.derived is not None and system.derived.shape[0]:  # e.g. the faces of a flow polygon

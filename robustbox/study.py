@@ -9,6 +9,7 @@ from __future__ import annotations
 import csv
 import json
 import re
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Sequence
@@ -16,7 +17,7 @@ from typing import Sequence
 import numpy as np
 
 from .certify import Certificate, CertifyOptions, Objective, certify
-from .errors import NetworkError, OperatingPointError
+from .errors import NetworkError, OperatingPointError, RobustboxNote
 from .grid.casefile import read_case
 from .grid.model import OPFResult, find_operating_point
 from .grid.network import BUS_NUMBER, GEN_AT, GEN_P, GEN_Q, GEN_Q_LOW, GEN_V_SET, Network
@@ -184,7 +185,7 @@ def result_to_json(res: CaseCertificate) -> dict:
     pt = point_to_json(net, op)
     pt.update({"slack_bus": int(net.bus[nsys.slack, BUS_NUMBER]), "policy": nsys.describe_policy()})
     out = {
-        "format_version": FORMAT_VERSION, "case": str(net.source), "base_mva": base, "scenario": res.scenario,
+        "format_version": FORMAT_VERSION, "case": str(net.source), "case_sha256": net.fingerprint(), "base_mva": base, "scenario": res.scenario,
         "objective": cert.objective, "status": cert.status, "certified_fraction": min(cert.certified_fraction, 1e12),
         "box": box, "operating_point": pt, "recourse": recourse_record(net, nsys.roles, op), "binding_limit": plain_condition(cert.binding, cert.certified_fraction,
                                                           res.max_fraction),
@@ -277,6 +278,9 @@ def check_box(net: Network, data: dict, samples: int = 300, seed: int = 0, sourc
             upper.append((up - nominal) / base)
     except (KeyError, TypeError, ValueError) as exc:
         raise OperatingPointError(f"{source}: not a robustbox result file (missing or bad field: {exc})") from None
+    if data.get("case_sha256") != net.fingerprint():
+        warnings.warn(f"{source}: the case data differ from those the box was certified on ({data.get('case')}); "
+                      f"the check validates the box against {net.source} as given", RobustboxNote, stacklevel=2)
     return validate_box(net, op, injections, np.array(lower), np.array(upper), record, samples=samples,
                         seed=seed, progress=progress)
 

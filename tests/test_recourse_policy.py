@@ -288,3 +288,19 @@ def test_a_slack_bus_whose_unit_has_fixed_q_hands_the_reference_on():
     assert first["bus"] == 2 and "type-3 bus has no unit in service with a reactive range" in first["why"]
     assert data["recourse"]["pq_buses_with_units"] == [{"bus": 1, "why": "every unit here has Qmin = Qmax: the "
                                                         "bus holds its Q, not its voltage"}]
+
+
+def test_zero_width_limits_and_edited_cases_are_named():
+    # PYPOWER case9 with Vmin = Vmax = 1 pu at PQ bus 5 (hand edit): its |V| must move, so no box exists
+    ppc = pypower.case9()
+    ppc["bus"][4, BUS_V_HIGH] = ppc["bus"][4, 12] = 1.0
+    net = _net(ppc, "case9 flat voltage band at bus 5")
+    with pytest.raises(RobustboxError, match="limits with no width .*'V2\\[5\\]'"):
+        certify_case(net, "loads", 0.05)  # the OPF puts |V| at bus 5 on its one allowed value
+    # a box checked against edited data: validated against the data given, with a note saying so
+    plain = _net(pypower.case9(), "case9")
+    data = json.loads(json.dumps(result_to_json(certify_case(plain, "loads", 0.05))))
+    edited = pypower.case9()
+    edited["bus"][4, BUS_P_LOAD] *= 1.01
+    with pytest.warns(Warning, match="case data differ from those the box was certified on"):
+        check_box(_net(edited, "case9 edited"), data, samples=20)

@@ -6,6 +6,8 @@ Engineering units (MW, Mvar, kV, degrees) live only in the tables.
 """
 from __future__ import annotations
 
+import hashlib
+
 import os
 import sys
 import warnings
@@ -436,6 +438,13 @@ class Network:
         g = self.gen[self.gen_on]
         return {"pmin": g[:, GEN_P_LOW] / self.base_mva, "pmax": g[:, GEN_P_HIGH] / self.base_mva,
                 "qmin": g[:, GEN_Q_LOW] / self.base_mva, "qmax": g[:, GEN_Q_HIGH] / self.base_mva}
+
+    def fingerprint(self) -> str:
+        """SHA-256 of the bus, generator and branch tables (base MVA included): same data, same text."""
+        digest = hashlib.sha256(np.float64(self.base_mva).tobytes())
+        for table in (self.bus, self.gen, self.branch):
+            digest.update(np.ascontiguousarray(table, dtype=np.float64).tobytes())
+        return digest.hexdigest()
 
     def copy(self) -> "Network":
         return Network(self.name, self.base_mva, self.bus.copy(), self.gen.copy(), self.branch.copy(),

@@ -134,8 +134,9 @@ def recourse_record(net: Network, roles: Roles, op: OperatingPoint) -> dict:
                                  "its Q, not its voltage"} for b in pq_with_units],
         "units": units,
         "rule": ("unit P = P at the point + balance_share × (change of total generation); under 'slack' only the "
-                 "slack bus's units share, under 'distributed' all sharing units; at a voltage bus the units "
-                 "without a fixed Q share the bus's Q beyond their Qmin in proportion to Qmax − Qmin"),
+                 "slack bus's units share, under 'distributed' all sharing units. Unit Q by q_role: 'fixed' "
+                 "injects Qmin, 'held' keeps its Q of the point, 'absorbs' takes the bus's Q beyond the other "
+                 "units, 'shares' takes Qmin plus a share of the bus's remaining Q in proportion to Qmax − Qmin"),
     }
 
 
