@@ -159,7 +159,17 @@ def certify_case(case: str | Path | Network, uncertain: str | Sequence[int] = "l
     if say:
         say(f"certificate: {len(injections)} uncertain injections, {nsys.system.equations.n_rows} equations, "
             f"{nsys.system.limits.n_rows} monitored rows; searching the {objective} box")
-    cert = certify(nsys.system, nsys.point, objective, options=options)
+    try:
+        cert = certify(nsys.system, nsys.point, objective, options=options)
+    except OperatingPointError as exc:
+        if not exc.violations:
+            raise
+        words = [plain_violation(v, net) for v in exc.violations]
+        hint = (" At margin 0 the least-cost point sits on its limits (within the solver's tolerance): leave "
+                "--margin out to get a point with room." if opf is not None and opf.margin == 0 else "")
+        raise OperatingPointError(f"the operating point violates {len(words)} limit(s), so the box is empty: "
+                                  + "; ".join(words[:6]) + (" ..." if len(words) > 6 else "") + "." + hint,
+                                  exc.violations) from None
     if say:
         say(f"certificate: {cert.status} in {cert.timings_s['total_s']:.1f} s")
     return CaseCertificate(net, nsys, cert, opf, band, scenario, options.max_fraction)
@@ -187,8 +197,7 @@ def result_to_json(res: CaseCertificate) -> dict:
     out = {
         "format_version": FORMAT_VERSION, "case": str(net.source), "case_sha256": net.fingerprint(), "base_mva": base, "scenario": res.scenario,
         "objective": cert.objective, "status": cert.status, "certified_fraction": min(cert.certified_fraction, 1e12),
-        "box": box, "operating_point": pt, "recourse": recourse_record(net, nsys.roles, op), "binding_limit": plain_condition(cert.binding, cert.certified_fraction,
-                                                          res.max_fraction),
+        "box": box, "operating_point": pt, "recourse": recourse_record(net, nsys.roles, op), "binding_limit": plain_condition(cert.binding, cert.certified_fraction, res.max_fraction, net),
         "binding_condition": cert.binding, "worst_margin_fraction": cert.worst_margin,
         "timings_s": cert.timings_s,
         "caution": CAUTION,
@@ -204,7 +213,18 @@ _QUANTITY = {"P": "active-power balance", "Q": "reactive-power balance", "V2": "
 _SIDE = {"Sf": "from", "St": "to"}
 
 
-def plain_condition(condition: str, fraction: float | None = None, max_fraction: float = 1.0) -> str:
+def _units_at(net: Network | None, bus: str) -> str:
+    """'the generator at bus B (row R of the generator table)' or 'the N generators at bus B (rows ...; their total)'."""
+    if net is None:
+        return f"the generators at bus {bus} (their total)"
+    rows = [net.file_row("gen", int(g)) for g in net.gen_on if int(net.gen[g, GEN_AT]) == int(bus)]
+    if len(rows) == 1:
+        return f"the generator at bus {bus} (row {rows[0]} of the generator table)"
+    return f"the {len(rows)} generators at bus {bus} (rows {', '.join(map(str, rows))} of the generator table; their total)"
+
+
+def plain_condition(condition: str, fraction: float | None = None, max_fraction: float = 1.0,
+                    net: Network | None = None) -> str:
     """The certificate's binding condition in a power engineer's words (bus numbers, table rows, what limits).
 
     ``condition`` is :attr:`Certificate.binding` ("upper limit 'Qgen[92]'", "self-mapping of equation
@@ -223,8 +243,8 @@ def plain_condition(condition: str, fraction: float | None = None, max_fraction:
     for pattern, words in (
             (r"V2\[(\d+)\]", lambda g: f"voltage {side} limit at bus {g[1]}"),
             (r"Pgen\[(generator row \d+ at bus \d+)\]", lambda g: f"active-power {side} limit of {g[1]}"),
-            (r"Pgen\[(\d+)\]", lambda g: f"active-power {side} limit of the slack bus's units (bus {g[1]})"),
-            (r"Qgen\[(\d+)\]", lambda g: f"reactive-power {side} limit of the generators at bus {g[1]} (their total)"),
+            (r"Pgen\[(\d+)\]", lambda g: f"active-power {side} limit at the slack bus: {_units_at(net, g[1])}"),
+            (r"Qgen\[(\d+)\]", lambda g: f"reactive-power {side} limit of {_units_at(net, g[1])}"),
             (r"(S[ft])\[(\d+)-(\d+)#(\d+)\]@\d+deg", lambda g: f"apparent-power rating of branch {g[2]}-{g[3]} "
                                                            f"(row {g[4]} of the branch table) at its {_SIDE[g[1]]} end"),
             (r"angle(max|min)\[(\d+)-(\d+)#(\d+)\]", lambda g: f"angle-difference {'upper' if g[1] == 'max' else 'lower'}"
@@ -233,6 +253,29 @@ def plain_condition(condition: str, fraction: float | None = None, max_fraction:
         if g:
             return words(g)
     return condition
+
+
+def plain_violation(text: str, net: Network) -> str:
+    """A violated limit row ("'Qgen[8]' = 0.1 outside [-0.4, 0.1] by 1e-8", per unit) in words and MW/Mvar/pu."""
+    m = re.fullmatch(r"'(.+)' = (\S+) (?:outside \[(\S+), (\S+)\]|above (\S+)) by (\S+)", text)
+    if not m:
+        return text
+    name, value = m[1], float(m[2])
+    low, high = (float(m[3]), float(m[4])) if m[3] is not None else (None, float(m[5]))
+    side = "upper" if low is None or value > high else "lower"
+    what = plain_condition(f"{side} limit '{name}'", net=net)
+    base = net.base_mva
+    if name.startswith("V2["):
+        unit, scale = "pu", None
+    elif name.startswith(("Pgen", "Qgen", "S")):
+        unit, scale = ("MW" if name.startswith("Pgen") else "Mvar" if name.startswith("Qgen") else "MVA"), base
+    else:
+        return f"{what}: {value:.6g} against {high if side == 'upper' else low:.6g}"
+    if scale is None:  # |V|² rows: report |V|
+        value, bound = float(np.sqrt(max(value, 0.0))), float(np.sqrt(max(high if side == "upper" else low, 0.0)))
+    else:
+        value, bound = value * scale, (high if side == "upper" else low) * scale
+    return f"{what}: {value:.6g} {unit} against {bound:.6g} {unit} (by {abs(value - bound):.3g} {unit})"
 
 
 CAUTION = ("Results depend on the model data (impedances, limits, the operating point and the uncertainty you "
