@@ -276,8 +276,8 @@ def _cmd_profile_demo(args: argparse.Namespace) -> int:
 DEMO_REACH = 3.0  # the demo asks for up to three times each site's planned capacity (invented scenario)
 HOSTING_REACH = 10.0  # default search reach of --objective hosting, × the band (common practice, no source)
 MARGIN_HELP = ("limit margin of the operating-point AC-OPF: every limit tightened by this fraction of its range "
-               "(flows: of the rating). Default: the largest of 0.1, 0.05, 0.02, 0.01, 0.005 that solves; 0: the "
-               "untightened optimum (no room: a zero box)")
+               "(flows: of the rating). Default: the largest of 0.1, 0.05, 0.02, 0.01, 0.005, 0.002, 0.001 that "
+               "solves; 0: the untightened optimum (no room: a zero box)")
 
 
 def build_parser() -> argparse.ArgumentParser:

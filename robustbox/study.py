@@ -20,7 +20,7 @@ from .certify import Certificate, CertifyOptions, Objective, certify
 from .errors import NetworkError, OperatingPointError, RobustboxNote
 from .grid.casefile import read_case
 from .grid.model import OPFResult, find_operating_point
-from .grid.network import BUS_NUMBER, GEN_AT, GEN_P, GEN_Q, GEN_Q_LOW, GEN_V_SET, Network
+from .grid.network import BUS_NUMBER, BUS_P_LOAD, GEN_AT, GEN_P, GEN_Q, GEN_Q_LOW, GEN_V_SET, Network
 from .grid.powerflow import newton_power_flow
 from .grid.system import (Injection, NetworkSystem, OperatingPoint, build_system, largest_load_pq_buses,
                           load_injections, recourse_record, recourse_roles, site_injections, split_q)
@@ -49,15 +49,28 @@ def scenario_injections(net: Network, uncertain: str | Sequence[int], band: floa
         raise NetworkError(f"site size must be a positive number of MW, got {site_mw}")
     if not band > 0 or not np.isfinite(band):
         raise NetworkError(f"band must be a positive number, got {band}")
+    injections, scenario = _scenario(net, uncertain, band, site_mw)
+    if not injections:
+        raise NetworkError(f"{net.source}: '{uncertain}' gives no uncertain injection here (no load, or no PQ bus "
+                           "with load for default sites); name the buses, e.g. --uncertain 5,9")
+    return injections, scenario
+
+
+def _scenario(net: Network, uncertain: str | Sequence[int], band: float,
+              site_mw: float) -> tuple[list[Injection], str]:
     if isinstance(uncertain, str) and uncertain == "loads":
         return load_injections(net, band), f"loads: P and Q of every load within ±{band:g} × nominal"
     if isinstance(uncertain, str) and uncertain == "renewables":
         if net.sites is not None:
             inj = [Injection(int(b), "p", 0.0, band * cap / net.base_mva) for b, _, cap in net.sites[:, :3]]
             return inj, f"renewables: the case's {len(inj)} marked sites, each 0..{band:g} × capacity above nominal"
-        buses = largest_load_pq_buses(net, 5)
-        return site_injections(net, buses, band, site_mw), (f"renewables: five sites at the largest-load PQ buses "
-                                                            f"{buses}, each injecting 0..{band * site_mw:g} MW")
+        buses, where = largest_load_pq_buses(net, 5), "PQ buses"
+        if not buses:  # every bus carries a unit: the largest loads elsewhere than at the slack bus
+            others = [i for i in np.argsort(-net.bus[:, BUS_P_LOAD], kind="stable")
+                      if i != net.slack and net.bus[i, BUS_P_LOAD] > 0][:5]
+            buses, where = [int(net.bus[i, BUS_NUMBER]) for i in others], "buses other than the slack (no PQ bus)"
+        return site_injections(net, buses, band, site_mw), (f"renewables: {len(buses)} site(s) at the largest-load "
+                                                            f"{where} {buses}, each injecting 0..{band * site_mw:g} MW")
     if isinstance(uncertain, str):
         raise NetworkError(f"unknown uncertainty '{uncertain}': use loads, renewables or a list of bus numbers")
     return (site_injections(net, list(uncertain), band, site_mw),

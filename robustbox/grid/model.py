@@ -214,7 +214,7 @@ def solve_opf(net: Network, margin: float = 0.0, tol: float = 1e-8, compare_base
                      time.perf_counter() - t0, res)
 
 
-MARGIN_LADDER = (0.1, 0.05, 0.02, 0.01, 0.005)  # tried in turn when no margin is given (common practice, no source)
+MARGIN_LADDER = (0.1, 0.05, 0.02, 0.01, 0.005, 0.002, 0.001)  # tried in turn when no margin is given (common practice, no source)
 LADDER_MAX_ITER = 400  # Ipopt iterations per rung: a rung that needs more is treated as failed (fail fast)
 
 

@@ -20,7 +20,8 @@ voltage-holding buses, P of units without a share, Q of fixed-Q units) are
 constant over the box; :func:`held_point` checks them at the operating point.  Branch apparent power is limited
 by derived rows: the faces cos φ_k P + sin φ_k Q ≤ rate·cos(π/N) of an
 inscribed regular N-gon (inside the polygon implies inside the circle, so the
-representation is inner; N = ``flow_faces``, default 32: 0.5 % of the rating
+representation is inner; N = ``flow_faces``, by default the smallest N ≥ 32 whose polygon keeps
+half of the most loaded branch end's remaining room at the operating point (32 faces: 0.5 % of the rating
 in the worst direction).  Uncertain injections enter the
 equations (E) where the bus has that equation, and the generator limits of
 their bus (A) where they change what the generators there must produce.
@@ -328,7 +329,7 @@ def _per_bus_sum(net: Network, values: np.ndarray) -> np.ndarray:
 
 
 def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injection], policy: Policy = "slack",
-                 participation: np.ndarray | None = None, flow_faces: int = 32) -> NetworkSystem:
+                 participation: np.ndarray | None = None, flow_faces: int | None = None) -> NetworkSystem:
     """Build the :class:`NetworkSystem` for ``injections`` around the operating point ``op``."""
     n = net.n_bus
     roles = recourse_roles(net, policy, participation)
@@ -393,6 +394,8 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     upper += [np.full(len(flow_rows), np.inf), np.zeros(ang.n_rows)]
     lim_full = QuadraticMap.stack(maps)
     first_flow = sum(len(x) for x in lower[:3])
+    if flow_faces is None:
+        flow_faces = _faces_for(net, op, rated)
     derived, derived_up, derived_names = _flow_polygon(net, rated, first_flow, lim_full.n_rows, flow_faces)
     names = list(lim_full.names)
     n_v, n_p = len(pq), p_rows.n_rows
@@ -450,6 +453,24 @@ def build_system(net: Network, op: OperatingPoint, injections: Sequence[Injectio
     system = QuadraticSystem(eq_map, target, lim_map, np.concatenate(lower), np.concatenate(upper), unc, tuple(var_names),
                              derived, derived_up, derived_names, rot)
     return NetworkSystem(system, point, net, op, tuple(injections), policy, part, s, pv, pq, flow_faces, roles)
+
+
+MAX_FACES = 512  # the polygon's inner radius is then 99.998 % of the rating
+
+
+def _faces_for(net: Network, op: OperatingPoint, rated: np.ndarray) -> int:
+    """Smallest N ≥ 32 with cos(π/N) ≥ (1 + loading)/2 for the most loaded rated branch end at ``op``."""
+    if not rated.size:
+        return 32
+    _, yf, yt = net.admittance()
+    v = op.voltage
+    f, t = net.branch_ends()
+    flow = np.maximum(np.abs(v[f] * np.conj(yf @ v)), np.abs(v[t] * np.conj(yt @ v)))[rated]
+    loading = float(np.max(flow / (net.branch[net.branch_on[rated], BRANCH_LIMIT_A] / net.base_mva)))
+    if loading >= 1.0:
+        return MAX_FACES
+    need = np.pi / np.arccos(min((1.0 + loading) / 2.0, 1.0 - 1e-12))
+    return int(min(MAX_FACES, max(32, np.ceil(need))))
 
 
 def _flow_polygon(net: Network, rated: np.ndarray, first: int, n_rows: int, faces: int
