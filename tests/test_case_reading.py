@@ -280,7 +280,7 @@ def test_zero_angle_limits_do_not_make_the_opf_infeasible(tmp_path):
     from robustbox.grid.model import solve_opf
     net = _read_quiet(_write(tmp_path, _with_angles("0", "0")))
     res = solve_opf(net, 0.0)
-    va = np.degrees(res.point.va_rad)
+    va = np.degrees(res.point.v_ang_rad)
     assert np.max(np.abs(va)) > 0.1  # power flows, so the angles differ: no θf − θt = 0 row was imposed
     # robustbox.validate measures an angle margin min(angmax − Δθ, Δθ − angmin) from these columns, with
     # Δθ the angle of V_f conj(V_t) in (−180°, 180°]: for the stored −360 / 360 it is never binding
