@@ -18,7 +18,6 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-
 from .certify import CertifyOptions, certify
 from .errors import CertificateError, NetworkError, OperatingPointError, SolverError
 from .fanout import FanOut, run_all

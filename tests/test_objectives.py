@@ -3,6 +3,8 @@
 Networks: PGLib-OPF v23.07 case118_ieee (skipped when the shared data is absent) and PYPOWER 5.1.21's
 classic case9/case14/case30.  Every box is checked through its box file by the independent validator
 (robustbox.study.check_box; its power flow is checked against PYPOWER runpf in tests/test_grid.py).
+The 1e-9 allowances in the comparisons are floating-point rounding of sums of MW values, and 1e-3 MW the
+smallest spread counted as "distinct" (both common practice, no source).
 """
 from __future__ import annotations
 

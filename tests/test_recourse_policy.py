@@ -4,7 +4,9 @@ Every certified box here is checked through the box file alone (robustbox.study.
 reads the policy from the file's "recourse" record and runs its own Newton power flows; its power flow is
 checked against PYPOWER 5.1.21 runpf in tests/test_grid.py).  The networks are PYPOWER 5.1.21's bundled
 copies of the classic IEEE cases (case9, case14, case24_ieee_rts: the IEEE 24-bus reliability test
-system, unmodified) and hand-edited variants of them written below.
+system, unmodified) and hand-edited variants of them written below.  Tolerances of 1e-9 / 1e-12 are
+floating-point rounding allowances (common practice, no source); the MW, Mvar and pu values of the
+refusal tests are the hand edits themselves (limits from PYPOWER's case data, e.g. Vmax 1.1 pu in case9).
 """
 from __future__ import annotations
 
